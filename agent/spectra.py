@@ -1,0 +1,339 @@
+"""Averaged spectra, noise floor and peak picking (pure functions).
+
+Conventions
+-----------
+* A :class:`Spectrum` holds a *power spectrum* in "tone r.m.s.² per line"
+  scaling (``scipy.signal.welch(..., scaling="spectrum")``): a pure tone
+  centred on a line reads its r.m.s.² on that line. Band r.m.s. values are
+  the sum of lines divided by the window's equivalent noise bandwidth in
+  lines (ENBW), which makes Parseval hold for any window.
+* Averaging is Welch's method (P. D. Welch, IEEE Trans. Audio
+  Electroacoust. 15(2), 1967): segments with overlap, windowed, |FFT|²
+  averaged; each segment's mean is removed.
+* Window figures (coherent gain, ENBW, scalloping loss) follow
+  F. J. Harris, Proc. IEEE 66(1), 1978, computed for periodic windows.
+* Velocity is acceleration divided by j·2πf, line by line, with every line
+  below ``f_low_hz`` set to zero (an ideal high-pass) so the 1/f² rise of
+  low-frequency noise — the integration "ski slope" — cannot dominate.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import ndimage, signal
+
+from agent.model import Peak
+
+WINDOWS = ("hann", "flattop", "rectangular")
+#: half-width of the main lobe in lines, for summing a tone's power
+_LOBE_HALF_LINES = {"hann": 2, "flattop": 5, "rectangular": 1}
+
+
+def make_window(name: str, n: int) -> np.ndarray:
+    """Periodic (DFT-even) window of length ``n``; see Harris 1978, §II."""
+    if name not in WINDOWS:
+        raise ValueError(f"window must be one of {WINDOWS}, got {name!r}")
+    if n < 4:
+        raise ValueError(f"window length must be >= 4, got {n}")
+    if name == "rectangular":
+        return np.ones(n)
+    return signal.get_window(name, n, fftbins=True)
+
+
+@dataclass(frozen=True, slots=True)
+class WindowFigures:
+    """Harris (1978) figures of merit of a window of ``n`` points."""
+
+    name: str
+    n: int
+    coherent_gain: float  # Σw/N
+    enbw_bins: float  # N·Σw²/(Σw)²
+    scallop_loss_db: float  # loss for a tone half a line off centre
+
+    @property
+    def amplitude_correction(self) -> float:
+        return 1.0 / self.coherent_gain
+
+
+def window_figures(name: str, n: int = 1024) -> WindowFigures:
+    """Coherent gain, ENBW (lines) and scalloping loss (dB) of a window."""
+    w = make_window(name, n)
+    cg = w.sum() / n
+    enbw = n * np.sum(w**2) / w.sum() ** 2
+    k = np.arange(n)
+    half_bin = abs(np.sum(w * np.exp(-1j * np.pi * k / n)))
+    sl_db = -20.0 * np.log10(half_bin / w.sum())
+    return WindowFigures(name, n, float(cg), float(enbw), float(sl_db))
+
+
+@dataclass(frozen=True, slots=True)
+class SpectrumPlan:
+    """Set-up for averaged spectra, built once and reused (like ShortTimeFFT)."""
+
+    fs_hz: float
+    nperseg: int
+    noverlap: int
+    window: str
+    win: np.ndarray
+    f_hz: np.ndarray
+    figures: WindowFigures
+
+    @property
+    def bin_width_hz(self) -> float:
+        return self.fs_hz / self.nperseg
+
+    @property
+    def lines(self) -> int:
+        return self.nperseg // 2
+
+    @classmethod
+    def build(
+        cls,
+        fs_hz: float,
+        n_samples: int,
+        *,
+        window: str = "hann",
+        lines: int | None = None,
+        overlap: float = 0.5,
+    ) -> "SpectrumPlan":
+        """A plan for ``n_samples`` at ``fs_hz`` with ``lines`` resolution lines.
+
+        ``lines`` = nperseg/2; None uses the largest power of two that still
+        gives a whole segment (a single average, finest resolution).
+        """
+        if not fs_hz > 0:
+            raise ValueError(f"fs_hz must be > 0, got {fs_hz!r}")
+        if not 0.0 <= overlap < 1.0:
+            raise ValueError(f"overlap must be in [0, 1), got {overlap!r}")
+        if n_samples < 8:
+            raise ValueError(f"need at least 8 samples, got {n_samples}")
+        if lines is None:
+            nperseg = 1 << int(np.floor(np.log2(n_samples)))
+        else:
+            nperseg = int(2 * lines)
+            if nperseg > n_samples:
+                nperseg = 1 << int(np.floor(np.log2(n_samples)))
+        win = make_window(window, nperseg)
+        win.setflags(write=False)
+        f_hz = np.fft.rfftfreq(nperseg, 1.0 / fs_hz)
+        f_hz.setflags(write=False)
+        noverlap = int(round(overlap * nperseg))
+        return cls(float(fs_hz), nperseg, noverlap, window, win, f_hz, window_figures(window, nperseg))
+
+
+@dataclass(frozen=True, slots=True)
+class Spectrum:
+    """An averaged power spectrum (tone r.m.s.² per line).
+
+    ``quantity`` is "acceleration" (``unit`` "m/s2") or "velocity" (``unit``
+    "mm/s"); amplitudes are read with :meth:`amplitude` on an r.m.s. or peak
+    basis. ``enbw_bins`` converts sums of lines to band power.
+    """
+
+    f_hz: np.ndarray
+    power: np.ndarray
+    quantity: str
+    unit: str
+    window: str
+    bin_width_hz: float
+    enbw_bins: float
+    n_averages: int
+    nperseg: int
+
+    def __post_init__(self) -> None:
+        for name in ("f_hz", "power"):
+            arr = np.array(getattr(self, name), dtype=np.float64, copy=True)
+            arr.setflags(write=False)
+            object.__setattr__(self, name, arr)
+
+    def amplitude(self, basis: str = "rms") -> np.ndarray:
+        """Line amplitudes; ``basis`` "rms" or "peak" (peak = √2·r.m.s., for tones)."""
+        rms = np.sqrt(self.power)
+        if basis == "rms":
+            return rms
+        if basis == "peak":
+            return rms * np.sqrt(2.0)
+        raise ValueError(f"basis must be 'rms' or 'peak', got {basis!r}")
+
+    @property
+    def fmax_hz(self) -> float:
+        return float(self.f_hz[-1])
+
+
+def accel_spectrum(accel_ms2: np.ndarray, plan: SpectrumPlan) -> Spectrum:
+    """Welch-averaged acceleration power spectrum, m/s² r.m.s.² per line."""
+    x = np.asarray(accel_ms2, dtype=np.float64)
+    if x.ndim != 1:
+        raise ValueError(f"accel_ms2 must be 1-D, got shape {x.shape}")
+    if x.size < plan.nperseg:
+        raise ValueError(f"{x.size} samples is shorter than one segment ({plan.nperseg})")
+    step = plan.nperseg - plan.noverlap
+    n_seg = 1 + (x.size - plan.nperseg) // step
+    idx = np.arange(plan.nperseg)[None, :] + step * np.arange(n_seg)[:, None]
+    seg = x[idx]
+    seg = seg - seg.mean(axis=1, keepdims=True)
+    spec = np.fft.rfft(seg * plan.win, axis=1)
+    power = (spec.real**2 + spec.imag**2).mean(axis=0)
+    power *= 2.0 / plan.win.sum() ** 2
+    power[0] /= 2.0
+    if plan.nperseg % 2 == 0:
+        power[-1] /= 2.0
+    return Spectrum(
+        f_hz=plan.f_hz,
+        power=power,
+        quantity="acceleration",
+        unit="m/s2",
+        window=plan.window,
+        bin_width_hz=plan.bin_width_hz,
+        enbw_bins=plan.figures.enbw_bins,
+        n_averages=int(n_seg),
+        nperseg=plan.nperseg,
+    )
+
+
+def velocity_spectrum(acc: Spectrum, f_low_hz: float) -> Spectrum:
+    """Velocity spectrum in mm/s from an acceleration spectrum (÷ 2πf per line).
+
+    Lines below ``f_low_hz`` are set to zero (ideal high-pass at the
+    integration; common practice to keep the 1/f rise out of the result).
+    """
+    if acc.quantity != "acceleration":
+        raise ValueError(f"expected an acceleration spectrum, got {acc.quantity!r}")
+    if not f_low_hz > 0:
+        raise ValueError(f"f_low_hz must be > 0, got {f_low_hz!r}")
+    f = acc.f_hz
+    power = np.zeros_like(acc.power)
+    keep = f >= f_low_hz
+    power[keep] = acc.power[keep] / (2.0 * np.pi * f[keep]) ** 2 * 1e6
+    return Spectrum(
+        f_hz=f,
+        power=power,
+        quantity="velocity",
+        unit="mm/s",
+        window=acc.window,
+        bin_width_hz=acc.bin_width_hz,
+        enbw_bins=acc.enbw_bins,
+        n_averages=acc.n_averages,
+        nperseg=acc.nperseg,
+    )
+
+
+def band_rms(spec: Spectrum, f_lo_hz: float, f_hi_hz: float) -> float:
+    """r.m.s. of the lines with centre in [f_lo_hz, f_hi_hz], in the spectrum's unit.
+
+    Sum of lines ÷ ENBW (lines): Parseval for a windowed, averaged spectrum.
+    """
+    if f_hi_hz < f_lo_hz:
+        raise ValueError(f"band reversed: {f_lo_hz} > {f_hi_hz}")
+    sel = (spec.f_hz >= f_lo_hz) & (spec.f_hz <= f_hi_hz)
+    return float(np.sqrt(spec.power[sel].sum() / spec.enbw_bins))
+
+
+def noise_floor(spec: Spectrum, width_hz: float | None = None) -> np.ndarray:
+    """Local noise floor (power per line) by a running median of log power.
+
+    The median over a window of lines ignores discrete peaks (they occupy
+    only a few lines), so it follows the broadband floor and resonance humps.
+    ``width_hz`` defaults to 2 % of the span, at least 15 lines.
+    """
+    n = spec.power.size
+    if width_hz is None:
+        width_lines = max(15, int(0.02 * n))
+    else:
+        width_lines = max(5, int(round(width_hz / spec.bin_width_hz)))
+    width_lines |= 1
+    tiny = max(float(spec.power.max()) * 1e-16, 1e-30)
+    logp = np.log10(np.maximum(spec.power, tiny))
+    med = ndimage.median_filter(logp, size=width_lines, mode="nearest")
+    return 10.0**med
+
+
+def _interp_offset(power: np.ndarray, k: int, window: str) -> float:
+    """Fractional-line offset of a tone peaking at line ``k``.
+
+    Hann: Grandke's two-line estimator δ = (2α−1)/(α+1), α = |X[k±1]|/|X[k]|
+    (T. Grandke, IEEE Trans. Instrum. Meas. 32(2), 1983), exact for one tone
+    apart from the leakage of the negative-frequency image. Other windows:
+    parabola through the log amplitudes of three lines (quadratic
+    interpolation; Smith & Serra 1987), bias below 0.1 line for flat-top.
+    """
+    n = power.size
+    if k <= 0 or k >= n - 1:
+        return 0.0
+    a_km, a_k, a_kp = np.sqrt(power[k - 1 : k + 2])
+    if a_k <= 0:
+        return 0.0
+    if window == "hann":
+        if a_kp >= a_km:
+            alpha = a_kp / a_k
+            return float((2 * alpha - 1) / (alpha + 1))
+        alpha = a_km / a_k
+        return -float((2 * alpha - 1) / (alpha + 1))
+    lm, l0, lp = np.log(np.maximum([a_km, a_k, a_kp], 1e-300))
+    den = lm - 2 * l0 + lp
+    if den >= 0:
+        return 0.0
+    return float(np.clip(0.5 * (lm - lp) / den, -0.5, 0.5))
+
+
+def tone_at(spec: Spectrum, k: int) -> tuple[float, float]:
+    """Interpolated (freq_hz, r.m.s. amplitude) of the tone peaking at line ``k``.
+
+    Amplitude is the power summed over the window's main lobe ÷ ENBW, which
+    removes the scalloping loss; for a velocity spectrum the sum is made on
+    acceleration and converted at the interpolated frequency.
+    """
+    n = spec.power.size
+    half = _LOBE_HALF_LINES.get(spec.window, 2)
+    lo, hi = max(0, k - half), min(n, k + half + 1)
+    delta = _interp_offset(spec.power, k, spec.window)
+    f = (k + delta) * spec.bin_width_hz
+    if spec.quantity == "velocity":
+        w = 2 * np.pi * spec.f_hz[lo:hi]
+        p_acc = np.sum(spec.power[lo:hi] * w**2)
+        amp = np.sqrt(p_acc / spec.enbw_bins) / (2 * np.pi * f) if f > 0 else 0.0
+    else:
+        amp = np.sqrt(spec.power[lo:hi].sum() / spec.enbw_bins)
+    return float(f), float(amp)
+
+
+def find_peaks(
+    spec: Spectrum,
+    floor: np.ndarray | None = None,
+    *,
+    min_height_db: float = 6.0,
+    fmin_hz: float = 0.0,
+    fmax_hz: float | None = None,
+    max_peaks: int | None = None,
+) -> tuple[Peak, ...]:
+    """Peaks standing ``min_height_db`` above the local floor, strongest first.
+
+    Works on log power, so small peaks on a low floor are found as well as
+    large ones. Each peak gets an interpolated frequency and amplitude
+    (see :func:`tone_at`); amplitude is r.m.s. in the spectrum's unit.
+    """
+    if floor is None:
+        floor = noise_floor(spec)
+    half = _LOBE_HALF_LINES.get(spec.window, 2)
+    tiny = 1e-300
+    logp = 10 * np.log10(np.maximum(spec.power, tiny))
+    logf = 10 * np.log10(np.maximum(floor, tiny))
+    idx, _ = signal.find_peaks(logp, distance=max(1, half))
+    fmax = spec.fmax_hz if fmax_hz is None else fmax_hz
+    out = []
+    for k in idx:
+        if spec.power[k] <= 0:
+            continue
+        h = logp[k] - logf[k]
+        if h < min_height_db:
+            continue
+        f, amp = tone_at(spec, int(k))
+        if f < fmin_hz or f > fmax:
+            continue
+        out.append(Peak(freq_hz=f, amp=amp, height_db=float(h), bin_idx=int(k)))
+    out.sort(key=lambda p: -p.amp)
+    if max_peaks is not None:
+        out = out[:max_peaks]
+    return tuple(out)
