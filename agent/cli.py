@@ -1,0 +1,117 @@
+"""Command line: ``skidvib <command>`` (argparse).
+
+Exit codes: 0 ok, 1 runtime error, 2 configuration error (the service
+manager does not restart on 2), 3 bad input file.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+
+from agent import __version__
+from agent.errors import AgentError, ConfigError, InputError
+
+EXIT_OK, EXIT_ERROR, EXIT_CONFIG, EXIT_INPUT = 0, 1, 2, 3
+
+SAFETY_NOTE = (
+    "Decision support only, not a machinery protection (trip) system. Work on running machinery only "
+    "with guards in place and under the site's lockout/tagout procedure; have advice confirmed by a "
+    "qualified person; local codes and licensed practice prevail."
+)
+
+
+def _load_cfg(path: str | None):
+    from agent.config import default_config, load_config
+
+    return load_config(path) if path else default_config()
+
+
+def cmd_check_config(args) -> int:
+    from agent.config import load_config, summary
+
+    cfg = load_config(args.config)
+    print(f"{args.config}: configuration is valid")
+    print(summary(cfg))
+    return EXIT_OK
+
+
+def cmd_analyze(args) -> int:
+    from agent.pipeline import analyse_capture, analysis_to_json
+    from agent.recordings import read_recording
+    from agent.report_text import analysis_text
+
+    cfg = _load_cfg(args.config)
+    rec = read_recording(
+        args.recording,
+        channel=args.channel,
+        fs_hz=args.fs,
+        units=args.units,
+        sensitivity_mv_per_g=args.sensitivity_mv_per_g,
+        fmt=args.format,
+    )
+    analysis = analyse_capture(rec.to_capture(), cfg)
+    if args.json:
+        doc = analysis_to_json(analysis, cfg)
+        doc = {"recording": rec.path, "units_in_file": rec.units_in_file, **doc}
+        json.dump(doc, sys.stdout, indent=2)
+        sys.stdout.write("\n")
+    else:
+        print(analysis_text(analysis, cfg, rec))
+    return EXIT_OK
+
+
+def cmd_demo(args) -> int:
+    from agent.demo import run_demo
+
+    return run_demo(args.out)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="skidvib", description="Vibration monitoring agent for one machine.")
+    p.add_argument("--version", action="version", version=f"skidvib {__version__}")
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    s = sub.add_parser("check-config", help="validate a config file and print its summary")
+    s.add_argument("config", help="TOML config file")
+    s.set_defaults(func=cmd_check_config)
+
+    s = sub.add_parser("analyze", help="analyse one recording and print levels, zone and peaks")
+    s.add_argument("recording", help="WAV, CSV/TXT, NPY, NPZ or MAT file")
+    s.add_argument("-c", "--config", help="config file (machine, analysis settings)")
+    s.add_argument("--json", action="store_true", help="print one JSON document")
+    s.add_argument("--channel", help="variable/column name or index to read")
+    s.add_argument("--fs", type=float, help="sample rate in Hz, when the file does not say")
+    s.add_argument("--units", choices=("g", "m/s2", "mm/s", "V"), help="units of the samples")
+    s.add_argument("--sensitivity-mv-per-g", type=float, help="sensor sensitivity, for --units V")
+    s.add_argument("--format", choices=("wav", "csv", "npy", "npz", "mat"), help="force the file format")
+    s.set_defaults(func=cmd_analyze)
+
+    s = sub.add_parser("demo", help="run the invented demo skid on the simulator (no hardware)")
+    s.add_argument("-o", "--out", default="demo-out", help="folder for the demo's outputs")
+    s.set_defaults(func=cmd_demo)
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.func(args) or 0)
+    except ConfigError as exc:
+        print(f"skidvib: {exc}", file=sys.stderr)
+        return EXIT_CONFIG
+    except InputError as exc:
+        print(f"skidvib: {exc}", file=sys.stderr)
+        return EXIT_INPUT
+    except AgentError as exc:
+        print(f"skidvib: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    except BrokenPipeError:
+        return EXIT_OK
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

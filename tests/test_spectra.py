@@ -1,0 +1,145 @@
+"""Spectral core against outside references (Harris 1978, scipy.signal.welch, Parseval)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import signal
+
+from agent.spectra import (
+    SpectrumPlan,
+    accel_spectrum,
+    band_rms,
+    find_peaks,
+    noise_floor,
+    tone_at,
+    velocity_spectrum,
+    window_figures,
+)
+from tests.conftest import tone
+
+FS = 25600.0
+N = 65536
+
+
+def test_window_figures_match_harris_1978():
+    # F. J. Harris, Proc. IEEE 66(1), 1978, Table I: Hann CG 0.50, ENBW 1.50 bins, scallop loss 1.42 dB
+    # (the table's values are from memory; REFERENCES.md §4 computes the same for periodic windows).
+    h = window_figures("hann", 1024)
+    assert h.coherent_gain == pytest.approx(0.5, abs=1e-9)
+    assert h.enbw_bins == pytest.approx(1.5, abs=1e-9)
+    assert h.scallop_loss_db == pytest.approx(1.42, abs=0.01)
+    # scipy's flat-top (D'Antona & Ferrero five-term): CG 0.2156, ENBW 3.77 bins, scallop < 0.02 dB
+    f = window_figures("flattop", 1024)
+    assert f.coherent_gain == pytest.approx(0.2156, abs=1e-3)
+    assert f.enbw_bins == pytest.approx(3.77, abs=0.01)
+    assert f.scallop_loss_db < 0.02
+    r = window_figures("rectangular", 1024)
+    assert (r.coherent_gain, r.enbw_bins) == (1.0, 1.0)
+    assert r.scallop_loss_db == pytest.approx(3.92, abs=0.01)  # Harris Table I: 3.92 dB
+
+
+@pytest.mark.parametrize("offset_bins", [0.0, 0.25, 0.5, 0.37])
+def test_flattop_reads_tone_within_0p1_percent(offset_bins):
+    # Harris 1978: the flat-top window's scalloping loss is ~0.01 dB → amplitude within 0.1 % on or off line.
+    plan = SpectrumPlan.build(FS, N, window="flattop", lines=4096)
+    f0 = (500 + offset_bins) * plan.bin_width_hz
+    spec = accel_spectrum(tone(FS, f0, 2.0, N), plan)
+    k = int(np.argmax(spec.power))
+    peak_line_amp = np.sqrt(spec.power[k])  # the single highest line, no interpolation: within the scallop loss
+    assert 20 * np.log10(peak_line_amp / 2.0) >= -plan.figures.scallop_loss_db - 1e-6
+    assert peak_line_amp == pytest.approx(2.0, rel=1.2e-3)
+    _, amp = tone_at(spec, k)  # main-lobe power sum ÷ ENBW
+    assert amp == pytest.approx(2.0, rel=1e-3)
+
+
+@pytest.mark.parametrize("offset_bins", [0.0, 0.25, 0.5])
+def test_hann_single_line_within_scalloping_loss(offset_bins):
+    # Harris 1978: Hann scalloping loss 1.42 dB at half a line; the highest line may read low by no more.
+    plan = SpectrumPlan.build(FS, N, window="hann", lines=4096)
+    f0 = (500 + offset_bins) * plan.bin_width_hz
+    spec = accel_spectrum(tone(FS, f0, 1.0, N), plan)
+    line_db = 10 * np.log10(spec.power.max())
+    assert -1.43 <= line_db <= 1e-6
+    # ... and our interpolated reading removes the loss (power summed over the main lobe ÷ ENBW)
+    f_est, amp = tone_at(spec, int(np.argmax(spec.power)))
+    assert amp == pytest.approx(1.0, rel=0.01)
+    assert abs(f_est - f0) / plan.bin_width_hz <= 0.05
+
+
+def test_parseval_overall_rms_equals_time_rms():
+    # Parseval's theorem: the sum over all lines ÷ ENBW equals the mean square of the waveform.
+    rng = np.random.default_rng(7)
+    x = rng.normal(0, 3.0, N) + tone(FS, 333.3, 2.0, N) + tone(FS, 4100.7, 0.5, N)
+    for window in ("hann", "flattop", "rectangular"):
+        plan = SpectrumPlan.build(FS, N, window=window, lines=8192, overlap=0.5)
+        spec = accel_spectrum(x, plan)
+        assert band_rms(spec, 0, FS / 2) == pytest.approx(np.std(x), rel=0.01)
+
+
+@pytest.mark.parametrize("kind", ["random", "tonal"])
+def test_band_power_agrees_with_scipy_welch(kind):
+    # Reference library: scipy.signal.welch (density scaling) integrated over the band.
+    rng = np.random.default_rng(3)
+    x = rng.normal(0, 1.0, N) if kind == "random" else tone(FS, 1234.5, 1.5, N) + rng.normal(0, 0.01, N)
+    plan = SpectrumPlan.build(FS, N, window="hann", lines=2048, overlap=0.5)
+    ours = band_rms(accel_spectrum(x, plan), 100.0, 5000.0) ** 2
+    f, pxx = signal.welch(x, FS, window="hann", nperseg=4096, noverlap=2048, detrend="constant")
+    sel = (f >= 100.0) & (f <= 5000.0)
+    ref = pxx[sel].sum() * (f[1] - f[0])
+    assert ours == pytest.approx(ref, rel=0.005)
+
+
+def test_velocity_units_50hz_10mm_s_peak_reads_7p07_rms():
+    # Units: a 50 Hz tone of 10 mm/s peak is 7.07 mm/s r.m.s. (peak/√2). Acceleration = 2πf·v.
+    v_peak_m_s = 0.010
+    t = np.arange(N) / FS
+    accel = v_peak_m_s * 2 * np.pi * 50.0 * np.cos(2 * np.pi * 50.0 * t)
+    plan = SpectrumPlan.build(FS, N, lines=16384)
+    vel = velocity_spectrum(accel_spectrum(accel, plan), 10.0)
+    assert band_rms(vel, 10.0, 1000.0) == pytest.approx(7.071, rel=0.005)
+    pk = find_peaks(vel, max_peaks=1)[0]
+    assert pk.freq_hz == pytest.approx(50.0, abs=0.01)
+    assert pk.amp == pytest.approx(7.071, rel=0.005)
+
+
+def test_velocity_high_pass_removes_integration_ski_slope():
+    # Low-frequency noise (1-5 Hz) would blow up as 1/f after integration; lines below f_low are zeroed.
+    rng = np.random.default_rng(1)
+    sos = signal.butter(4, [1.0, 5.0], btype="band", fs=FS, output="sos")
+    x = signal.sosfilt(sos, rng.normal(0, 5.0, N))
+    plan = SpectrumPlan.build(FS, N, lines=16384)
+    vel = velocity_spectrum(accel_spectrum(x, plan), 10.0)
+    assert band_rms(vel, 0, 10.0 - plan.bin_width_hz) == 0.0
+
+
+def test_noise_floor_and_peaks_find_small_and_large_peaks():
+    rng = np.random.default_rng(5)
+    x = rng.normal(0, 0.05, N) + tone(FS, 100.0, 5.0, N) + tone(FS, 3000.0, 0.02, N)
+    plan = SpectrumPlan.build(FS, N, lines=8192)
+    spec = accel_spectrum(x, plan)
+    floor = noise_floor(spec)
+    # the floor follows the white noise level (0.05² / (fs/2) per Hz × ENBW × line width), not the tones
+    expected_line = 0.05**2 / (FS / 2) * plan.bin_width_hz * plan.figures.enbw_bins
+    assert np.median(floor) == pytest.approx(expected_line, rel=0.3)
+    peaks = find_peaks(spec, floor, min_height_db=10)
+    freqs = sorted(round(p.freq_hz) for p in peaks)
+    assert 100 in freqs and 3000 in freqs
+    small = [p for p in peaks if abs(p.freq_hz - 3000) < 1][0]
+    assert small.amp == pytest.approx(0.02, rel=0.1)
+
+
+def test_plan_and_spectrum_are_read_only():
+    plan = SpectrumPlan.build(FS, 4096)
+    with pytest.raises(ValueError):
+        plan.win[0] = 2.0
+    spec = accel_spectrum(np.ones(4096), plan)
+    with pytest.raises(ValueError):
+        spec.power[0] = 1.0
+
+
+def test_bad_arguments_raise_value_error():
+    with pytest.raises(ValueError, match="window"):
+        SpectrumPlan.build(FS, 4096, window="kaiser")
+    with pytest.raises(ValueError, match="shorter"):
+        accel_spectrum(np.ones(100), SpectrumPlan.build(FS, 4096))
