@@ -63,6 +63,16 @@ def cmd_analyze(args) -> int:
     return EXIT_OK
 
 
+def cmd_report(args) -> int:
+    from agent.report import write_report
+
+    cfg = _load_cfg(args.config)
+    read_args = {k: v for k, v in (("channel", args.channel), ("fs_hz", args.fs), ("units", args.units)) if v is not None}
+    out = write_report(args.target, cfg, args.out, **read_args)
+    print(f"report written to {out}")
+    return EXIT_OK
+
+
 def cmd_demo(args) -> int:
     from agent.demo import run_demo
 
@@ -88,6 +98,15 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--sensitivity-mv-per-g", type=float, help="sensor sensitivity, for --units V")
     s.add_argument("--format", choices=("wav", "csv", "npy", "npz", "mat"), help="force the file format")
     s.set_defaults(func=cmd_analyze)
+
+    s = sub.add_parser("report", help="write a self-contained HTML report of a snapshot or recording")
+    s.add_argument("target", help="snapshot folder or recording file")
+    s.add_argument("-c", "--config", help="config file")
+    s.add_argument("-o", "--out", default="report.html", help="output HTML file")
+    s.add_argument("--channel", help="variable/column to read from a recording")
+    s.add_argument("--fs", type=float, help="sample rate in Hz, when the file does not say")
+    s.add_argument("--units", choices=("g", "m/s2", "mm/s", "V"), help="units of the samples")
+    s.set_defaults(func=cmd_report)
 
     s = sub.add_parser("demo", help="run the invented demo skid on the simulator (no hardware)")
     s.add_argument("-o", "--out", default="demo-out", help="folder for the demo's outputs")

@@ -19,6 +19,7 @@ Conventions
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -244,10 +245,53 @@ def noise_floor(spec: Spectrum, width_hz: float | None = None) -> np.ndarray:
     else:
         width_lines = max(5, int(round(width_hz / spec.bin_width_hz)))
     width_lines |= 1
-    tiny = max(float(spec.power.max()) * 1e-16, 1e-30)
-    logp = np.log10(np.maximum(spec.power, tiny))
-    med = ndimage.median_filter(logp, size=width_lines, mode="nearest")
-    return 10.0**med
+    power = spec.power
+    weight = None
+    if spec.quantity == "velocity":
+        # the velocity floor falls as 1/f²: take the median on acceleration (flat-ish), convert back
+        weight = (2 * np.pi * spec.f_hz) ** 2
+        power = power * weight
+    floor = np.zeros_like(power)
+    positive = np.flatnonzero(power > 0)
+    if positive.size == 0:
+        return floor
+    start = int(positive[0])  # lines cut away (below a high-pass) stay out of the median
+    tiny = max(float(power.max()) * 1e-16, 1e-30)
+    logp = np.log10(np.maximum(power[start:], tiny))
+    floor[start:] = 10.0 ** ndimage.median_filter(logp, size=width_lines, mode="nearest")
+    if weight is not None:
+        with np.errstate(divide="ignore"):
+            floor = np.where(spec.power > 0, floor / np.where(weight > 0, weight, np.inf), 0.0)
+    return floor
+
+
+def noise_threshold_db(n_averages: int, false_alarm_per_line: float = 1e-5) -> float:
+    """Height above the median floor that noise alone exceeds with the given probability per line.
+
+    The power of an averaged line of Gaussian noise is χ² with 2·K degrees of
+    freedom (K = averages; Welch 1967), so a peak must clear the
+    (1 − p) quantile relative to the median to count as real.
+    """
+    from scipy.stats import chi2
+
+    dof = 2 * max(1, int(n_averages))
+    return float(10 * np.log10(chi2.ppf(1 - false_alarm_per_line, dof) / chi2.median(dof)))
+
+
+def _drop_leakage_skirts(idx: np.ndarray, logp_db: np.ndarray, window: str, margin_db: float = 6.0) -> np.ndarray:
+    """Remove local maxima that lie within a stronger peak's leakage skirt."""
+    env = leakage_envelope_db(window)
+    order = idx[np.argsort(-logp_db[idx])]
+    kept: list[int] = []
+    for k in order:
+        if kept:
+            arr = np.asarray(kept)
+            d = np.abs(arr - k)
+            near = d < env.size
+            if np.any(near) and np.any(logp_db[k] < logp_db[arr[near]] + env[d[near]] + margin_db):
+                continue
+        kept.append(int(k))
+    return np.sort(np.asarray(kept, dtype=int))
 
 
 def _interp_offset(power: np.ndarray, k: int, window: str) -> float:
@@ -299,6 +343,25 @@ def tone_at(spec: Spectrum, k: int) -> tuple[float, float]:
     return float(f), float(amp)
 
 
+@functools.lru_cache(maxsize=8)
+def leakage_envelope_db(window: str, max_lines: int = 64) -> np.ndarray:
+    """Worst-case leakage of a tone ``d`` lines away, dB re its peak, d = 0..max_lines.
+
+    From the window's own transform (zero-padded DFT, 32 points per line),
+    taking the maximum over the tone's possible offsets within a line.
+    """
+    n, pad = 256, 32
+    w = make_window(window, n)
+    mag = np.abs(np.fft.rfft(w, n * pad))
+    mag /= mag[0]
+    env = np.empty(max_lines + 1)
+    for d in range(max_lines + 1):
+        lo, hi = max(0, (d * pad) - pad // 2), d * pad + pad // 2 + 1
+        env[d] = mag[lo:hi].max()
+    env = np.maximum.accumulate(env[::-1])[::-1]  # monotone non-increasing
+    return 20 * np.log10(np.maximum(env, 1e-12))
+
+
 def find_peaks(
     spec: Spectrum,
     floor: np.ndarray | None = None,
@@ -307,24 +370,33 @@ def find_peaks(
     fmin_hz: float = 0.0,
     fmax_hz: float | None = None,
     max_peaks: int | None = None,
+    false_alarm_per_line: float | None = 1e-5,
 ) -> tuple[Peak, ...]:
-    """Peaks standing ``min_height_db`` above the local floor, strongest first.
+    """Peaks standing above the local floor, strongest first.
 
-    Works on log power, so small peaks on a low floor are found as well as
-    large ones. Each peak gets an interpolated frequency and amplitude
-    (see :func:`tone_at`); amplitude is r.m.s. in the spectrum's unit.
+    A peak must clear ``min_height_db`` and, unless ``false_alarm_per_line``
+    is None, the height that averaged noise alone would reach with that
+    probability per line (:func:`noise_threshold_db`). Works on log power,
+    so small peaks on a low floor are found as well as large ones. Each peak
+    gets an interpolated frequency and amplitude (see :func:`tone_at`);
+    amplitude is r.m.s. in the spectrum's unit.
     """
     if floor is None:
         floor = noise_floor(spec)
+    if false_alarm_per_line is not None:
+        min_height_db = max(min_height_db, noise_threshold_db(spec.n_averages, false_alarm_per_line))
     half = _LOBE_HALF_LINES.get(spec.window, 2)
     tiny = 1e-300
     logp = 10 * np.log10(np.maximum(spec.power, tiny))
     logf = 10 * np.log10(np.maximum(floor, tiny))
     idx, _ = signal.find_peaks(logp, distance=max(1, half))
     fmax = spec.fmax_hz if fmax_hz is None else fmax_hz
+    idx = idx[(spec.power[idx] > 0) & (floor[idx] > 0)]
+    idx = idx[logp[idx] - logf[idx] >= min_height_db]
+    idx = _drop_leakage_skirts(idx, logp, spec.window)
     out = []
     for k in idx:
-        if spec.power[k] <= 0:
+        if spec.power[k] <= 0 or floor[k] <= 0:
             continue
         h = logp[k] - logf[k]
         if h < min_height_db:
