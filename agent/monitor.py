@@ -1,0 +1,192 @@
+"""One step of monitoring: captures in → machine state, findings and events out.
+
+This is the code path shared by the daemon (``skidvib run``), replay
+(``skidvib replay``/``demo``) and the tests: the same captures and config
+give the same results byte for byte, because every stage is pure and time
+comes from the captures' own timestamps, never from the clock.
+
+``monitor_step(state, captures, cfg) -> (CaptureResult, MonitorState)``:
+
+1. quality gate on every channel — a failed capture gives ``sensor_fault``
+   and is never used for learning or machine alarms;
+2. analysis of the first channel (:func:`agent.pipeline.analyse_capture`):
+   spectra, overall levels, speed, peaks, findings;
+3. assessment against the ISO 20816-3 zones and the learned baseline;
+4. the operator's state, its one-line reason, action and urgency, and the
+   events to publish (state changes, new findings).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from dataclasses import dataclass, field
+from typing import Any
+
+from agent.config import AgentConfig
+from agent.model import Capture, Finding, MachineState
+from agent.pipeline import Analysis, analyse_capture, analysis_to_json
+
+SCHEMA = 1
+
+#: what the operator is told to do in each state (our own wording)
+STATE_ACTION = {
+    MachineState.NORMAL: ("No action needed.", "none"),
+    MachineState.LEARNING: ("No action needed; the agent is learning this machine's normal.", "none"),
+    MachineState.ALERT: ("Have the machine checked by the reliability team; plan work.", "within_days"),
+    MachineState.DANGER: ("Tell the shift supervisor now; consider a controlled stop.", "act_now"),
+    MachineState.SENSOR_FAULT: ("Check the sensor, its cable and connector; readings are not trusted.", "within_days"),
+    MachineState.STOPPED: ("No action; the machine is not running.", "none"),
+    MachineState.OFFLINE: ("Check the monitoring box and its network.", "within_days"),
+}
+
+
+@dataclass(frozen=True, slots=True)
+class MonitorState:
+    """What is carried from one capture to the next (serialisable with ``to_json``)."""
+
+    state: MachineState = MachineState.LEARNING
+    since_utc_s: float = 0.0
+    reason: str = "starting"
+    last_speed_hz: float | None = None
+    mode: str = "monitor"  # monitor | learn | maintenance
+    mode_until_utc_s: float | None = None
+    n_captures: int = 0
+    finding_codes: tuple[str, ...] = ()
+    engine: Any = None  # alarm engine state (agent.assess), when present
+    baselines: Any = None  # learned baselines (agent.baseline), when present
+
+    def to_json(self) -> dict:
+        return {
+            "schema": SCHEMA,
+            "state": self.state.value,
+            "since_utc_s": self.since_utc_s,
+            "reason": self.reason,
+            "last_speed_hz": self.last_speed_hz,
+            "mode": self.mode,
+            "mode_until_utc_s": self.mode_until_utc_s,
+            "n_captures": self.n_captures,
+            "finding_codes": list(self.finding_codes),
+        }
+
+
+@dataclass(frozen=True, slots=True)
+class CaptureResult:
+    """The outcome of one monitoring step."""
+
+    t_utc_s: float
+    seq: int
+    channel: str
+    state: MachineState
+    previous_state: MachineState
+    since_utc_s: float
+    reason: str
+    action: str
+    urgency: str
+    analysis: Analysis | None
+    quality_ok: bool = True
+    quality_problems: tuple[str, ...] = ()
+    findings: tuple[Finding, ...] = ()
+    features: dict = field(default_factory=dict)
+    events: tuple[dict, ...] = ()
+    speed_hz: float | None = None
+    analysis_doc: dict = field(default_factory=dict)  # spectrum facts, overall levels, peaks (JSON-ready)
+
+    @property
+    def state_changed(self) -> bool:
+        return self.state != self.previous_state
+
+    def state_json(self) -> dict:
+        return {
+            "state": self.state.value,
+            "since_utc_s": self.since_utc_s,
+            "reason": self.reason,
+            "action": self.action,
+            "urgency": self.urgency,
+        }
+
+    def to_json(self) -> dict:
+        """The analysis document stored with a snapshot (and sent as findings detail)."""
+        doc: dict = {
+            "schema": SCHEMA,
+            "t_utc_s": self.t_utc_s,
+            "seq": self.seq,
+            "channel": self.channel,
+            "state": self.state_json(),
+            "quality": {"ok": self.quality_ok, "problems": list(self.quality_problems)},
+            "speed_hz": self.speed_hz,
+            "features": self.features,
+            "findings": [f.to_json() for f in self.findings],
+            "events": list(self.events),
+        }
+        if self.analysis_doc:
+            doc["analysis"] = self.analysis_doc
+        return doc
+
+
+def initial_state(cfg: AgentConfig, t_utc_s: float = 0.0) -> MonitorState:
+    return MonitorState(since_utc_s=t_utc_s)
+
+
+def _features(a: Analysis) -> dict:
+    o = a.overall
+    return {
+        "vel_rms_mm_s": o.vel_rms_mm_s,
+        "acc_rms_g": o.acc_rms_g,
+        "acc_peak_g": o.acc_peak_g,
+        "crest_factor": o.crest_factor,
+        "kurtosis": o.kurtosis,
+    }
+
+
+def _machine_state_from_zone(zone: str) -> tuple[MachineState, str]:
+    if zone == "D":
+        return MachineState.DANGER, "overall vibration in ISO 20816-3 zone D"
+    if zone == "C":
+        return MachineState.ALERT, "overall vibration in ISO 20816-3 zone C"
+    return MachineState.NORMAL, f"overall vibration in ISO 20816-3 zone {zone}"
+
+
+def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConfig) -> tuple[CaptureResult, MonitorState]:
+    """Judge one capture (one per channel); return the result and the state to carry on."""
+    if not captures:
+        raise ValueError("monitor_step needs at least one capture")
+    cap = captures[0]
+    t = cap.t0_utc_s
+    analysis = analyse_capture(cap, cfg)
+    new_state, reason = _machine_state_from_zone(analysis.overall.iso_zone)
+    if ms.mode == "maintenance" and new_state in (MachineState.ALERT, MachineState.DANGER):
+        reason = f"maintenance mode: alarms held ({reason})"
+        new_state = MachineState.NORMAL
+    action, urgency = STATE_ACTION[new_state]
+    findings = analysis.findings
+    events: list[dict] = []
+    since = ms.since_utc_s if new_state == ms.state else t
+    if new_state != ms.state:
+        events.append({"event": "state_change", "t_utc_s": t, "state": new_state.value,
+                       "previous_state": ms.state.value, "reason": reason})
+    codes = tuple(sorted(f.code for f in findings))
+    for f in findings:
+        if f.code not in ms.finding_codes:
+            events.append({"event": "new_finding", "t_utc_s": t, "code": f.code, "title": f.title,
+                           "severity": f.severity.name.lower(), "confidence": round(f.confidence, 3)})
+    result = CaptureResult(
+        t_utc_s=t,
+        seq=cap.seq,
+        channel=cap.channel,
+        state=new_state,
+        previous_state=ms.state,
+        since_utc_s=since,
+        reason=reason,
+        action=action,
+        urgency=urgency,
+        analysis=analysis,
+        findings=findings,
+        features=_features(analysis),
+        events=tuple(events),
+        speed_hz=None,
+        analysis_doc={k: v for k, v in analysis_to_json(analysis, cfg).items() if k in ("spectrum", "overall", "peaks")},
+    )
+    new_ms = dataclasses.replace(
+        ms, state=new_state, since_utc_s=since, reason=reason, n_captures=ms.n_captures + 1, finding_codes=codes
+    )
+    return result, new_ms
