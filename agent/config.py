@@ -159,6 +159,8 @@ class StoreConfig:
     state_dir: str = _f("state", help="folder for trend DB, baselines, snapshots, outbox")
     snapshot_max_count: int = _f(500, range=(1, 1_000_000))
     snapshot_max_mb: float = _f(500.0, range=(1.0, 1_000_000.0))
+    snapshot_every_h: float = _f(24.0, range=(0.0, 10_000.0), help="scheduled reference snapshot; 0 = off")
+    health_every_s: float = _f(60.0, range=(1.0, 86_400.0), help="how often the agent publishes its health")
 
 
 @dataclass(frozen=True, slots=True)
@@ -167,6 +169,8 @@ class MqttConfig:
     host: str = _f("127.0.0.1")
     port: int = _f(1883, range=(1, 65535))
     prefix: str = _f("skidvib", help="topic prefix")
+    site: str = _f("", help="site level of the topics; '' = made from asset.site")
+    protocol: str = _f("auto", choices=("auto", "5", "3.1.1"), help="MQTT 5 with 3.1.1 fallback, or fixed")
     client_id: str = _f("")
     keepalive_s: int = _f(30, range=(5, 3600))
     username: str = _f("")

@@ -190,3 +190,21 @@ def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConf
         ms, state=new_state, since_utc_s=since, reason=reason, n_captures=ms.n_captures + 1, finding_codes=codes
     )
     return result, new_ms
+
+
+def source_problem_step(ms: MonitorState, t_utc_s: float, problem: str) -> tuple[CaptureResult, MonitorState]:
+    """The source could not deliver (device gone, stalled stream): a sensor fault, no machine judgement."""
+    state = MachineState.SENSOR_FAULT
+    reason = f"no usable data: {problem}"
+    action, urgency = STATE_ACTION[state]
+    since = ms.since_utc_s if ms.state == state else t_utc_s
+    events = ()
+    if ms.state != state:
+        events = ({"event": "state_change", "t_utc_s": t_utc_s, "state": state.value,
+                   "previous_state": ms.state.value, "reason": reason},)
+    result = CaptureResult(
+        t_utc_s=t_utc_s, seq=-1, channel="", state=state, previous_state=ms.state, since_utc_s=since,
+        reason=reason, action=action, urgency=urgency, analysis=None, quality_ok=False,
+        quality_problems=("source",), events=events,
+    )
+    return result, dataclasses.replace(ms, state=state, since_utc_s=since, reason=reason)

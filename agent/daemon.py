@@ -1,0 +1,492 @@
+"""``skidvib run``: the unattended monitoring loop (the imperative shell).
+
+Threads
+-------
+* **acquisition** — opens the configured source (re-opening with back-off
+  when it vanishes), reads one capture every ``source.interval_s`` and puts
+  it into a bounded queue. When analysis falls behind, the newest capture is
+  dropped and counted: acquisition never waits for analysis or the network.
+* **main** — takes captures from the queue, runs :func:`agent.monitor.monitor_step`
+  (the same code path as replay), stores the trend row and snapshots,
+  queues MQTT messages into the durable outbox, answers remote requests,
+  feeds the service watchdog only when real progress was made, and handles
+  SIGTERM/SIGINT (stop: finish the current write, flush, publish offline)
+  and SIGHUP (reload the config; an invalid one is rejected, the old kept).
+* **MQTT** — paho's network thread and the link's sender (agent/mqtt.py).
+
+Error policy: a ``ConfigError`` at start stops with exit code 2; any other
+``AgentError`` in the loop (source, store, publish trouble) is counted,
+logged and reported in the health message while monitoring goes on; any
+other exception is a bug and ends the process for systemd to restart.
+
+Logs: one event per line on stderr (``key=value``), for journald.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import os
+import queue
+import signal
+import sys
+import threading
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+from agent.config import AgentConfig, load_config, resolve_path
+from agent.errors import AgentError, ConfigError, SourceError, SourceUnavailable, StoreError
+from agent.model import Capture, MachineState
+from agent.monitor import CaptureResult, MonitorState, initial_state, monitor_step, source_problem_step
+
+QUEUE_CAPTURES = 2
+BAD_STATES = (MachineState.ALERT, MachineState.DANGER)
+
+
+def log_event(event: str, level: str = "info", stream=None, **fields: Any) -> None:
+    """One structured line: ``level=info event=capture seq=12 state=normal``."""
+    parts = [f"level={level}", f"event={event}"]
+    for k, v in fields.items():
+        if isinstance(v, float):
+            v = f"{v:.4g}"
+        text = str(v)
+        if not text or any(c in text for c in ' ="\n'):
+            text = json.dumps(text)
+        parts.append(f"{k}={text}")
+    print(" ".join(parts), file=stream or sys.stderr, flush=True)
+
+
+@dataclass
+class Health:
+    """Counters and gauges about the agent itself (published on ``<base>/health``)."""
+
+    started_mono_s: float
+    captures_done: int = 0
+    captures_dropped: int = 0
+    source_errors: int = 0
+    store_errors: int = 0
+    publish_errors: int = 0
+    reloads: int = 0
+    reload_failures: int = 0
+    snapshots: int = 0
+    last_error: str = ""
+    last_capture_utc_s: float = 0.0
+    extra: dict = field(default_factory=dict)
+
+    def values(self, now_mono_s: float) -> dict:
+        return {
+            "uptime_s": round(now_mono_s - self.started_mono_s, 1),
+            "captures_done_count": self.captures_done,
+            "captures_dropped_count": self.captures_dropped,
+            "source_errors_count": self.source_errors,
+            "store_errors_count": self.store_errors,
+            "publish_errors_count": self.publish_errors,
+            "reloads_count": self.reloads,
+            "reload_failures_count": self.reload_failures,
+            "snapshots_count": self.snapshots,
+            "last_capture_utc_s": self.last_capture_utc_s,
+            "last_error": self.last_error,
+            **self.extra,
+        }
+
+
+def open_source(cfg: AgentConfig):
+    """The configured source, built by its registry entry (hardware libraries imported lazily)."""
+    from agent.sources import source_class
+
+    cls = source_class(cfg.source.kind)
+    return cls.from_config(cfg)
+
+
+class Acquisition(threading.Thread):
+    """Reads captures on schedule into a bounded queue; never blocks on the consumer."""
+
+    def __init__(self, cfg: AgentConfig, out: queue.Queue, health: Health, *,
+                 source_factory: Callable[[AgentConfig], Any] = open_source,
+                 mono: Callable[[], float] = time.monotonic, wall: Callable[[], float] = time.time):
+        super().__init__(name="acquisition", daemon=True)
+        self.cfg, self.out, self.health = cfg, out, health
+        self.source_factory, self.mono, self.wall = source_factory, mono, wall
+        self.stop_event = threading.Event()
+        self.ended = threading.Event()
+
+    def _put(self, item) -> None:
+        try:
+            self.out.put_nowait(item)
+        except queue.Full:
+            self.health.captures_dropped += 1
+            log_event("capture_dropped", "warning", reason="analysis is behind", dropped=self.health.captures_dropped)
+
+    def run(self) -> None:
+        from agent.sources import EndOfSource
+
+        src = None
+        backoff_s = 0.5
+        next_t = self.mono()
+        interval = self.cfg.source.interval_s
+        timeout_s = max(2.0 * self.cfg.source.capture_s + 5.0, 10.0)
+        while not self.stop_event.is_set():
+            try:
+                if src is None:
+                    src = self.source_factory(self.cfg)
+                    src.open()
+                    log_event("source_open", **{k: v for k, v in src.describe().items() if isinstance(v, (str, int, float))})
+                    backoff_s = 0.5
+                caps = src.read(timeout_s)
+                self._put(("captures", tuple(caps)))
+            except EndOfSource:
+                self._put(("end", None))
+                break
+            except SourceError as exc:
+                self.health.source_errors += 1
+                self.health.last_error = str(exc)
+                log_event("source_error", "warning", error=str(exc), kind=type(exc).__name__)
+                self._put(("source_problem", str(exc)))
+                if src is not None:
+                    src.close()
+                    src = None
+                if self.stop_event.wait(backoff_s):
+                    break
+                backoff_s = min(backoff_s * 2, 60.0)
+                continue
+            next_t += interval
+            now = self.mono()
+            if next_t < now:  # we are late (slow source): do not try to catch up in a burst
+                next_t = now
+            if self.stop_event.wait(max(0.0, next_t - now)):
+                break
+        if src is not None:
+            src.close()
+        self.ended.set()
+
+
+class Daemon:
+    """The monitoring service for one machine."""
+
+    def __init__(self, cfg: AgentConfig, *, source_factory=open_source, use_mqtt: bool | None = None,
+                 mono: Callable[[], float] = time.monotonic, wall: Callable[[], float] = time.time,
+                 max_captures: int | None = None):
+        self.cfg = cfg
+        self.source_factory = source_factory
+        self.mono, self.wall = mono, wall
+        self.max_captures = max_captures
+        self.use_mqtt = cfg.mqtt.enabled if use_mqtt is None else use_mqtt
+        self.health = Health(started_mono_s=mono())
+        self.stop_event = threading.Event()
+        self.reload_event = threading.Event()
+        self.snapshot_event = threading.Event()
+        self.queue: queue.Queue = queue.Queue(maxsize=QUEUE_CAPTURES)
+        self.ms: MonitorState = initial_state(cfg, wall())
+        self.last_result: CaptureResult | None = None
+        self.last_captures: tuple[Capture, ...] = ()
+        self.store = None
+        self.link = None
+        self.remote = None
+        self.controls = None
+        self.open_alarm_id: str | None = None
+        self.next_scheduled_snapshot_mono = mono() + cfg.store.snapshot_every_h * 3600.0
+        self.next_health_mono = 0.0
+
+    # ── edges ──
+    def _open_edges(self) -> None:
+        from agent.store import Store
+
+        state_dir = resolve_path(self.cfg, self.cfg.store.state_dir)
+        self.store = Store(state_dir, max_count=self.cfg.store.snapshot_max_count,
+                           max_bytes=int(self.cfg.store.snapshot_max_mb * 1024 * 1024), clock=self.wall)
+        self._restore_state(state_dir)
+        if self.use_mqtt:
+            self._open_mqtt()
+
+    def _open_mqtt(self) -> None:
+        from agent.mqtt import MqttLink, settings_from_config
+        from agent.outbox import Outbox
+        from agent.remote import BasicControls, RemoteService, RequestHandler
+
+        settings = settings_from_config(self.cfg)
+        outbox = Outbox(self.store.outbox_path)
+        self.link = MqttLink(settings, outbox, clock=self.wall)
+        self.controls = BasicControls(snapshot_fn=self._snapshot_now, relearn_fn=self._relearn, clock=self.wall)
+        self.remote = RemoteService(self.link, RequestHandler(settings.topics, self.store, self.controls, clock=self.wall))
+        self.link.start()
+        log_event("mqtt_start", host=settings.host, port=settings.port, base=settings.topics.base)
+
+    def _state_file(self, state_dir: Path) -> Path:
+        return state_dir / "monitor.json"
+
+    def _restore_state(self, state_dir: Path) -> None:
+        p = self._state_file(state_dir)
+        try:
+            doc = json.loads(p.read_text(encoding="utf-8"))
+            self.ms = dataclasses.replace(
+                self.ms,
+                state=MachineState(doc["state"]),
+                since_utc_s=float(doc["since_utc_s"]),
+                reason=str(doc.get("reason", "")),
+                mode=str(doc.get("mode", "monitor")),
+                finding_codes=tuple(doc.get("finding_codes", ())),
+            )
+            log_event("state_restored", state=self.ms.state.value)
+        except FileNotFoundError:
+            pass
+        except (OSError, ValueError, KeyError, TypeError) as exc:
+            log_event("state_file_ignored", "warning", file=str(p), error=str(exc))
+
+    def _save_state(self) -> None:
+        from agent.store import json_bytes, write_atomic
+
+        try:
+            write_atomic(self._state_file(self.store.state_dir), json_bytes(self.ms.to_json()))
+        except StoreError as exc:
+            self._count_store_error(exc)
+
+    def _count_store_error(self, exc: Exception) -> None:
+        self.health.store_errors += 1
+        self.health.last_error = str(exc)
+        log_event("store_error", "warning", error=str(exc))
+
+    # ── remote controls ──
+    def _snapshot_now(self) -> str:
+        """Called for a remote 'snapshot' request (on the request thread): take it from the last capture."""
+        if self.last_result is None or not self.last_captures:
+            from agent.errors import RequestError
+
+            raise RequestError("no_capture", "no capture has been taken yet")
+        return self._save_snapshot(self.last_result, self.last_captures, "on_request")
+
+    def _relearn(self) -> None:
+        log_event("relearn_requested")
+        self.ms = dataclasses.replace(self.ms, baselines=None, engine=None)
+
+    # ── the work ──
+    def _save_snapshot(self, result: CaptureResult, caps: tuple[Capture, ...], reason: str) -> str:
+        a = result.analysis
+        spectra = {}
+        if a is not None:
+            spectra = {"f_hz": a.acc.f_hz, "acc_power_ms2sq": a.acc.power, "vel_power_mm_s_sq": a.vel.power}
+        sid = self.store.save_snapshot(t_utc_s=result.t_utc_s, reason=reason, waveform_ms2=caps[0].accel_ms2,
+                                       fs_hz=caps[0].fs_hz, spectra=spectra, analysis=result.to_json())
+        self.health.snapshots += 1
+        self.store.prune()
+        log_event("snapshot", id=sid, reason=reason)
+        return sid
+
+    def _publish(self, result: CaptureResult, snapshot_id: str) -> None:
+        if self.link is None:
+            return
+        from agent import mqtt as m
+        from agent.outbox import Kind
+
+        t = result.t_utc_s
+        mode = self.ms.mode
+        try:
+            if result.state_changed or self.health.captures_done <= 1:
+                self.link.send("state", m.state_payload(result.state, result.since_utc_s, result.reason, result.action,
+                                                        result.urgency, t_utc_s=t, mode=mode),
+                               kind=Kind.KEPT, retain=True, replace_key="state")
+            values = {k: v for k, v in result.features.items() if k.endswith(m.UNIT_SUFFIXES)}
+            if result.speed_hz:
+                values["speed_hz"] = result.speed_hz
+                values["speed_rpm"] = result.speed_hz * 60.0
+            if values:
+                self.link.send("measurements", m.measurements_payload(values, t_utc_s=t, capture_seq=result.seq,
+                                                                      state=result.state), kind=Kind.PERIODIC)
+            for ev in result.events:
+                self.link.send("events", m.event_payload(
+                    ev["event"], t_utc_s=t, state=result.state, previous_state=ev.get("previous_state", ""),
+                    severity=ev.get("severity", ""), title=ev.get("title", ev.get("reason", "")),
+                    finding_code=ev.get("code", ""), snapshot_id=snapshot_id, detail=ev), kind=Kind.KEPT)
+            if result.events:
+                self.link.send("findings", m.findings_payload(result.findings, t_utc_s=t, state=result.state),
+                               kind=Kind.KEPT, retain=True, replace_key="findings")
+        except (AgentError, ValueError) as exc:
+            self.health.publish_errors += 1
+            self.health.last_error = str(exc)
+            log_event("publish_error", "warning", error=str(exc))
+
+    def _publish_health(self, now_mono: float) -> None:
+        if self.link is None or now_mono < self.next_health_mono:
+            return
+        from agent import mqtt as m
+        from agent.outbox import Kind
+
+        self.next_health_mono = now_mono + self.cfg.store.health_every_s
+        extra = {}
+        try:
+            st = self.link.outbox.stats()
+            extra["outbox_depth_count"] = st.depth
+            extra["outbox_bytes_count"] = st.bytes
+            du = self.store.disk_usage()
+            extra.update({k: v for k, v in du.items() if isinstance(v, (int, float))})
+        except (AgentError, OSError, AttributeError) as exc:
+            extra["health_note"] = str(exc)
+        self.health.extra = extra
+        try:
+            self.link.send("health", m.health_payload(self.health.values(now_mono), t_utc_s=self.wall()),
+                           kind=Kind.PERIODIC, retain=True, replace_key="health")
+        except AgentError as exc:
+            self.health.publish_errors += 1
+            self.health.last_error = str(exc)
+
+    def _handle_result(self, result: CaptureResult, caps: tuple[Capture, ...]) -> None:
+        snapshot_id = ""
+        if self.store is not None:
+            try:
+                if result.analysis is not None:
+                    self.store.add_trend(result.t_utc_s, result.state.value, result.speed_hz, result.features)
+            except StoreError as exc:
+                self._count_store_error(exc)
+            due = self.mono() >= self.next_scheduled_snapshot_mono and self.cfg.store.snapshot_every_h > 0
+            reason = "state_change" if result.state_changed else ("scheduled" if due else "")
+            if self.snapshot_event.is_set():
+                reason = reason or "on_request"
+                self.snapshot_event.clear()
+            if reason and caps:
+                try:
+                    snapshot_id = self._save_snapshot(result, caps, reason)
+                    if reason == "scheduled":
+                        self.next_scheduled_snapshot_mono = self.mono() + self.cfg.store.snapshot_every_h * 3600.0
+                    if result.state in BAD_STATES and result.state_changed:
+                        self.open_alarm_id = f"{result.state.value}-{int(result.t_utc_s)}"
+                        self.store.pin(snapshot_id, self.open_alarm_id)
+                        if self.controls is not None:
+                            self.controls.open_alarms[self.open_alarm_id] = {"state": result.state.value,
+                                                                             "t_utc_s": result.t_utc_s,
+                                                                             "snapshot_id": snapshot_id}
+                except StoreError as exc:
+                    self._count_store_error(exc)
+            if result.state not in BAD_STATES and self.open_alarm_id and result.state_changed:
+                try:
+                    self.store.unpin_alarm(self.open_alarm_id)
+                except StoreError as exc:
+                    self._count_store_error(exc)
+                if self.controls is not None:
+                    self.controls.open_alarms.pop(self.open_alarm_id, None)
+                self.open_alarm_id = None
+            if result.state_changed:
+                self._save_state()
+        self._publish(result, snapshot_id)
+
+    def _process(self, item) -> bool:
+        """Handle one queue item; False when the source has ended."""
+        kind, payload = item
+        now_utc = self.wall()
+        if kind == "end":
+            log_event("source_end")
+            return False
+        if kind == "source_problem":
+            result, self.ms = source_problem_step(self.ms, now_utc, payload)
+            if result.state_changed:
+                log_event("state", state=result.state.value, reason=result.reason)
+            self._handle_result(result, ())
+            return True
+        caps: tuple[Capture, ...] = payload
+        if self.controls is not None:
+            mode = self.controls.current_mode()
+            if mode != self.ms.mode:
+                self.ms = dataclasses.replace(self.ms, mode=mode)
+                log_event("mode", mode=mode)
+        result, self.ms = monitor_step(self.ms, caps, self.cfg)
+        self.last_result, self.last_captures = result, caps
+        self.health.captures_done += 1
+        self.health.last_capture_utc_s = result.t_utc_s
+        log_event("capture", seq=result.seq, state=result.state.value,
+                  vel_rms_mm_s=result.features.get("vel_rms_mm_s", float("nan")),
+                  speed_hz=result.speed_hz if result.speed_hz else "n/a")
+        if result.state_changed:
+            log_event("state", state=result.state.value, previous=result.previous_state.value, reason=result.reason)
+        self._handle_result(result, caps)
+        return True
+
+    def _reload(self) -> None:
+        self.reload_event.clear()
+        try:
+            new = load_config(self.cfg.path)
+        except ConfigError as exc:
+            self.health.reload_failures += 1
+            self.health.last_error = "reload rejected: " + "; ".join(exc.problems)
+            log_event("reload_rejected", "error", problems="; ".join(exc.problems))
+            return
+        self.health.reloads += 1
+        changed_source = new.source != self.cfg.source
+        self.cfg = new
+        log_event("reload", source_changed=changed_source)
+        if changed_source:
+            self._restart_acquisition()
+
+    def _restart_acquisition(self) -> None:
+        if getattr(self, "acq", None) is not None:
+            self.acq.stop_event.set()
+            self.acq.join(10)
+        self.acq = Acquisition(self.cfg, self.queue, self.health, source_factory=self.source_factory,
+                               mono=self.mono, wall=self.wall)
+        self.acq.start()
+
+    def install_signal_handlers(self) -> None:
+        signal.signal(signal.SIGTERM, lambda *_: self.stop_event.set())
+        signal.signal(signal.SIGINT, lambda *_: self.stop_event.set())
+        signal.signal(signal.SIGHUP, lambda *_: self.reload_event.set())
+
+    def run(self) -> int:
+        from agent.sdnotify import Notifier, WatchdogGate
+
+        notifier = Notifier.from_env()
+        gate = WatchdogGate(notifier)
+        self._open_edges()
+        log_event("start", asset=self.cfg.asset.tag, source=self.cfg.source.kind, pid=os.getpid())
+        notifier.ready("starting: waiting for the first capture")
+        self.acq = None
+        self._restart_acquisition()
+        if self.remote is not None:
+            self.remote.start()
+        try:
+            while not self.stop_event.is_set():
+                if self.reload_event.is_set():
+                    notifier.reloading()
+                    self._reload()
+                    notifier.ready("running; config reloaded")
+                try:
+                    item = self.queue.get(timeout=min(1.0, gate.max_wait_s))
+                except queue.Empty:
+                    gate.progress()  # the loop is alive and waiting for the next capture
+                    gate.maybe_ping(self.mono())
+                    self._publish_health(self.mono())
+                    continue
+                gate.progress()
+                if not self._process(item):
+                    break
+                gate.progress()
+                gate.maybe_ping(self.mono())
+                self._publish_health(self.mono())
+                notifier.status(f"{self.ms.state.value}; {self.health.captures_done} captures")
+                if self.max_captures is not None and self.health.captures_done >= self.max_captures:
+                    break
+        finally:
+            notifier.stopping("stopping")
+            self.shutdown()
+        return 0
+
+    def shutdown(self) -> None:
+        log_event("stopping", captures=self.health.captures_done)
+        if getattr(self, "acq", None) is not None:
+            self.acq.stop_event.set()
+            self.acq.join(10)
+        if self.remote is not None:
+            self.remote.stop()
+        if self.store is not None:
+            self._save_state()
+        if self.link is not None:
+            self._publish_health(float("inf"))
+            self.link.stop(timeout_s=5.0)
+        if self.store is not None:
+            self.store.close()
+        log_event("stopped")
+
+
+def run_daemon(config_path: str, *, max_captures: int | None = None, no_mqtt: bool = False) -> int:
+    cfg = load_config(config_path)  # ConfigError → exit 2 in the CLI
+    d = Daemon(cfg, use_mqtt=False if no_mqtt else None, max_captures=max_captures)
+    d.install_signal_handlers()
+    return d.run()
