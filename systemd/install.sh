@@ -17,8 +17,9 @@
 #   --pip-args "ARGS"  extra arguments for `pip install` (e.g. "--no-index
 #                      --find-links /media/usb/wheels" on a box without internet)
 #   --no-venv          do not create the venv nor install the package
-#   --config FILE      the config to install if none exists (default: the
-#                      example in config/ of this checkout)
+#   --config FILE      the config to install if none exists (default:
+#                      config/template.toml of this checkout, with its
+#                      [store] state_dir set to /var/lib/skidvib)
 #   --no-systemctl     do not run systemctl at all
 #   --start            also (re)start the service after enabling it
 set -euo pipefail
@@ -65,7 +66,7 @@ checkout=$(cd "$(dirname "${BASH_SOURCE[0]}")/.." && pwd)
   die "run me from a skidvib checkout (no pyproject.toml / systemd/skidvib.service near $0)"
 
 if [ -z "$config_src" ]; then
-  for candidate in "$checkout/config/skidvib.toml" "$checkout/config/agent.toml"; do
+  for candidate in "$checkout/config/template.toml"; do
     if [ -f "$candidate" ]; then config_src=$candidate; break; fi
   done
 elif [ ! -f "$config_src" ]; then
@@ -95,7 +96,8 @@ fi
 unit_dir="$root/etc/systemd/system"
 mkdir -p "$unit_dir"
 tmp_unit=$(mktemp)
-trap 'rm -f "$tmp_unit"' EXIT
+tmp_conf=$(mktemp)
+trap 'rm -f "$tmp_unit" "$tmp_conf"' EXIT
 sed "s#/opt/skidvib/#$prefix/#g" "$checkout/systemd/skidvib.service" >"$tmp_unit"
 if cmp -s "$tmp_unit" "$unit_dir/skidvib.service"; then
   say "unit $unit_dir/skidvib.service is up to date"
@@ -110,10 +112,21 @@ mkdir -p "$conf_dir"
 if [ -e "$conf_dir/skidvib.toml" ]; then
   say "kept existing config $conf_dir/skidvib.toml"
 elif [ -n "$config_src" ]; then
-  install -m 0644 "$config_src" "$conf_dir/skidvib.toml"
+  # The service may write only its StateDirectory= (/var/lib/skidvib).
+  sed 's#^state_dir = "[^"]*"#state_dir = "/var/lib/skidvib"#' "$config_src" >"$tmp_conf"
+  install -m 0644 "$tmp_conf" "$conf_dir/skidvib.toml"
   say "installed config $conf_dir/skidvib.toml from $config_src: edit it for this machine"
 else
   say "WARNING: no config installed (no example in $checkout/config, no --config); write $conf_dir/skidvib.toml"
+fi
+
+if [ -x "$venv/bin/skidvib" ] && [ -f "$conf_dir/skidvib.toml" ]; then
+  if "$venv/bin/skidvib" check-config "$conf_dir/skidvib.toml" >"$tmp_conf" 2>&1; then
+    say "config $conf_dir/skidvib.toml is valid"
+  else
+    say "WARNING: config $conf_dir/skidvib.toml is not valid yet; fix it before starting:"
+    sed 's/^/    /' "$tmp_conf"
+  fi
 fi
 
 # 4. Tell systemd.

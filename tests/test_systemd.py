@@ -483,6 +483,22 @@ def test_install_twice_into_a_temporary_root_then_uninstall(tmp_path):
     assert not config.exists() and not state.exists()
 
 
+def test_default_config_is_the_template_writing_to_the_state_directory(tmp_path):
+    root = tmp_path / "root"
+    _run(INSTALL, "--root", str(root), "--no-venv", "--no-systemctl")
+    config = root / "etc/skidvib/skidvib.toml"
+    text = config.read_text()
+    assert 'state_dir = "/var/lib/skidvib"' in text  # StateDirectory=skidvib, the only writable place
+    template = (ROOT / "config/template.toml").read_text()
+    assert len(text.splitlines()) == len(template.splitlines())  # only that value changed
+    res = subprocess.run(
+        [sys.executable, "-m", "agent", "check-config", str(config)],
+        capture_output=True, text=True, timeout=60, cwd=ROOT,
+    )
+    assert res.returncode == 0, res.stdout + res.stderr
+    assert "/var/lib/skidvib" in res.stdout
+
+
 def test_install_rejects_bad_options(tmp_path):
     res = subprocess.run(
         ["bash", str(INSTALL), "--root", str(tmp_path), "--prefix", "relative/dir"],
