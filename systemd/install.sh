@@ -66,9 +66,7 @@ checkout=$(cd "$(dirname "${BASH_SOURCE[0]}")/.." && pwd)
   die "run me from a skidvib checkout (no pyproject.toml / systemd/skidvib.service near $0)"
 
 if [ -z "$config_src" ]; then
-  for candidate in "$checkout/config/template.toml"; do
-    if [ -f "$candidate" ]; then config_src=$candidate; break; fi
-  done
+  if [ -f "$checkout/config/template.toml" ]; then config_src="$checkout/config/template.toml"; fi
 elif [ ! -f "$config_src" ]; then
   die "config '$config_src' does not exist"
 fi
