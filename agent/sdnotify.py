@@ -26,7 +26,7 @@ How the daemon uses it (all calls from the main thread)::
     # Do not wait for the sensor: a missing device is weather, handled in the loop.
     notifier.ready("starting: waiting for first capture")
 
-    while not stop_requested:
+    while not stop_event.is_set():            # threading.Event set by the SIGTERM handler
         try:
             captures = source.read(timeout_s)     # bounded: raises SourceStalled
             gate.progress()                       # a capture was acquired
@@ -36,11 +36,11 @@ How the daemon uses it (all calls from the main thread)::
             notifier.status(f"{state}; last capture {utc_iso}")
         except AgentError:                        # weather: counted, loop goes on
             gate.progress()                       # the loop itself is alive
-            back_off()
+            gate.idle(back_off_s, stop_event)     # back-off wait, watchdog fed
         gate.maybe_ping(time.monotonic())
-        # waiting for the next capture: sleep in slices no longer than
-        # gate.max_wait_s, calling gate.progress() and gate.maybe_ping() after
-        # each slice (a timed wait that returns is progress; a hang is not).
+        # waiting for the next capture: a timed wait that returns is progress
+        # (a hang is not), so wait in slices of at most gate.max_wait_s:
+        gate.idle(seconds_to_next_capture, stop_event)   # True if stop_event was set
 
     notifier.stopping()                       # on SIGTERM, before closing the edges
 
@@ -62,6 +62,7 @@ from __future__ import annotations
 import math
 import os
 import socket
+import threading
 import time
 from collections.abc import Mapping
 
@@ -217,6 +218,27 @@ class WatchdogGate:
     def progress(self) -> None:
         """Record that the main loop finished a real unit of work."""
         self._progressed = True
+
+    def idle(self, wait_s: float, stop: threading.Event | None = None) -> bool:
+        """Wait up to ``wait_s`` seconds in slices of at most :attr:`max_wait_s`.
+
+        After each slice the wait counts as progress and a keep-alive is sent
+        when due. Returns True as soon as ``stop`` is set, False when the time
+        is up.
+        """
+        end_s = time.monotonic() + max(0.0, wait_s)
+        while True:
+            left_s = end_s - time.monotonic()
+            if left_s <= 0:
+                return bool(stop is not None and stop.is_set())
+            slice_s = min(left_s, self.max_wait_s)
+            if stop is not None:
+                if stop.wait(slice_s):
+                    return True
+            else:
+                time.sleep(slice_s)
+            self.progress()
+            self.maybe_ping(time.monotonic())
 
     def maybe_ping(self, now_monotonic_s: float) -> bool:
         """Send ``WATCHDOG=1`` if progress was recorded and the interval has passed.

@@ -19,6 +19,7 @@ import socket
 import struct
 import subprocess
 import sys
+import threading
 import time
 import uuid
 from pathlib import Path
@@ -224,6 +225,28 @@ def test_gate_pings_at_the_interval_while_progressing_and_stops_when_stuck(recei
     gate.progress()
     assert gate.maybe_ping(t + 20.0)
     assert len(receiver.drain()) == 1
+
+
+def test_idle_wait_keeps_the_watchdog_fed_and_stops_on_request(receiver):
+    n = Notifier.from_env({"NOTIFY_SOCKET": receiver.address, "WATCHDOG_USEC": "200000"})
+    gate = WatchdogGate(n)  # interval 0.1 s
+    t0 = time.monotonic()
+    assert gate.idle(0.45) is False
+    elapsed_s = time.monotonic() - t0
+    assert 0.45 <= elapsed_s < 2.0
+    got = receiver.drain()
+    # slices of 0.1 s: a ping after each due slice, i.e. about 4 in 0.45 s
+    assert 3 <= len(got) <= 5 and all(m[2] == {"WATCHDOG": "1"} for m in got)
+
+    stop = threading.Event()
+    threading.Timer(0.15, stop.set).start()  # what a SIGTERM handler would do
+    t0 = time.monotonic()
+    assert gate.idle(30.0, stop) is True
+    assert time.monotonic() - t0 < 5.0  # returned early, not after 30 s
+    assert gate.idle(0.0, stop) is True  # already set
+
+    off = WatchdogGate(Notifier.from_env({}))  # no watchdog: one plain sleep
+    assert off.max_wait_s == float("inf") and off.idle(0.01) is False
 
 
 def test_watchdog_pid_mismatch_sends_no_pings(receiver):
