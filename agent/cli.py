@@ -73,6 +73,12 @@ def cmd_report(args) -> int:
     return EXIT_OK
 
 
+def cmd_run(args) -> int:
+    from agent.daemon import run_daemon
+
+    return run_daemon(args.config, max_captures=args.max_captures, no_mqtt=args.no_mqtt)
+
+
 def cmd_demo(args) -> int:
     from agent.demo import run_demo
 
@@ -98,6 +104,12 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--sensitivity-mv-per-g", type=float, help="sensor sensitivity, for --units V")
     s.add_argument("--format", choices=("wav", "csv", "npy", "npz", "mat"), help="force the file format")
     s.set_defaults(func=cmd_analyze)
+
+    s = sub.add_parser("run", help="run the monitoring service (as systemd does)")
+    s.add_argument("-c", "--config", required=True, help="config file")
+    s.add_argument("--no-mqtt", action="store_true", help="do not connect to a broker (store only)")
+    s.add_argument("--max-captures", type=int, help="stop after this many captures (for trials)")
+    s.set_defaults(func=cmd_run)
 
     s = sub.add_parser("report", help="write a self-contained HTML report of a snapshot or recording")
     s.add_argument("target", help="snapshot folder or recording file")
