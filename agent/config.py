@@ -20,6 +20,7 @@ from __future__ import annotations
 import dataclasses
 import difflib
 import math
+import re
 import tomllib
 import typing
 from dataclasses import dataclass, field
@@ -159,6 +160,10 @@ class StoreConfig:
     state_dir: str = _f("state", help="folder for trend DB, baselines, snapshots, outbox")
     snapshot_max_count: int = _f(500, range=(1, 1_000_000))
     snapshot_max_mb: float = _f(500.0, range=(1.0, 1_000_000.0))
+    trend_raw_days: float = _f(14.0, range=(1.0, 3650.0),
+                               help="keep one trend row per capture this long, then hourly rows")
+    trend_hourly_days: float = _f(400.0, range=(1.0, 36500.0),
+                                  help="keep hourly trend rows this long")
 
 
 @dataclass(frozen=True, slots=True)
@@ -174,6 +179,11 @@ class MqttConfig:
     tls_ca: str = _f("")
     tls_cert: str = _f("")
     tls_key: str = _f("")
+    site: str = _f("", help="site level of the topic tree ('' = asset.site made topic-safe)")
+    protocol: str = _f("auto", choices=("auto", "5", "3.1.1"),
+                       help="MQTT version: auto tries 5 and falls back to 3.1.1")
+    outbox_max_mb: float = _f(16.0, range=(0.1, 10_000.0),
+                              help="bound of the on-disk outbox; measurements are shed first")
 
 
 @dataclass(frozen=True, slots=True)
@@ -337,6 +347,14 @@ def _cross_checks(cfg: AgentConfig, errors: list[str]) -> None:
         errors.append("source.replay.paths: at least one path is required when source.kind = 'replay'")
     if bool(cfg.mqtt.tls_cert) != bool(cfg.mqtt.tls_key):
         errors.append("mqtt.tls_cert / mqtt.tls_key: give both or neither")
+    if cfg.store.trend_hourly_days < cfg.store.trend_raw_days:
+        errors.append(f"store.trend_hourly_days {cfg.store.trend_hourly_days} must be >= "
+                      f"store.trend_raw_days {cfg.store.trend_raw_days}")
+    for key, value in (("mqtt.prefix", cfg.mqtt.prefix), ("mqtt.site", cfg.mqtt.site)):
+        if value and not all(re.fullmatch(r"[A-Za-z0-9_.-]{1,64}", part)
+                             for part in value.split("/")):
+            errors.append(f"{key}: {value!r} may hold only letters, digits, '_', '.', '-' "
+                          "(and '/' between levels in the prefix); no '+', '#' or spaces")
 
 
 def parse_config(data: dict, path: str = "<config>") -> AgentConfig:

@@ -212,6 +212,29 @@ class MqttSettings:
         return Topics(self.prefix, self.site, self.asset)
 
 
+def topic_level(name: str) -> str:
+    """A free-text name (site, tag) made into one safe topic level: ``"Plant 3 / North"``
+    → ``"plant_3_north"``."""
+    slug = re.sub(r"[^a-z0-9_.-]+", "_", name.strip().lower()).strip("_")
+    return slug[:64] or "unnamed"
+
+
+def settings_from_config(cfg) -> MqttSettings:
+    """:class:`MqttSettings` from an ``AgentConfig`` (its ``mqtt`` and ``asset`` sections)."""
+    m, a = cfg.mqtt, cfg.asset
+    base = Path(cfg.path).parent if getattr(cfg, "path", "") else Path(".")
+
+    def file(v: str) -> str | None:
+        return str(base / v) if v else None
+
+    return MqttSettings(
+        host=m.host, port=m.port, client_id=m.client_id or f"skidvib-{topic_level(a.tag)}",
+        keepalive_s=m.keepalive_s, username=m.username or None,
+        password_file=file(m.password_file), tls_ca_file=file(m.tls_ca),
+        tls_cert_file=file(m.tls_cert), tls_key_file=file(m.tls_key), protocol=m.protocol,
+        prefix=m.prefix, site=m.site or topic_level(a.site), asset=topic_level(a.tag))
+
+
 @dataclass(frozen=True, slots=True)
 class Inbound:
     """A request as it arrived: command from the topic, raw payload, MQTT 5 reply fields."""

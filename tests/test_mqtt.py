@@ -292,3 +292,29 @@ def test_tls_wrong_ca_refused(tmp_path, tls_broker, pki):
                         "--key", str(pki.client_key), "-u", "agent", "-P", USERS["agent"],
                         "-t", f"{BASE}/x", "-m", "x"], capture_output=True, timeout=10)
     assert r.returncode != 0
+
+
+def test_settings_from_config(tmp_path):
+    from agent.config import parse_config
+    from agent.errors import ConfigError
+    from agent.mqtt import settings_from_config, topic_level
+    from agent.store import Store
+
+    cfg = parse_config({"asset": {"site": "Plant 3 / North", "tag": "P-101A"},
+                        "mqtt": {"prefix": "factory/vib", "password_file": "secret.pw",
+                                 "protocol": "3.1.1"},
+                        "store": {"state_dir": "st", "trend_raw_days": 7}},
+                       str(tmp_path / "agent.toml"))
+    s = settings_from_config(cfg)
+    assert s.topics.base == "factory/vib/plant_3_north/p-101a"
+    assert s.password_file == str(tmp_path / "secret.pw") and s.protocol == "3.1.1"
+    assert s.client_id == "skidvib-p-101a"
+    st = Store.from_config(cfg)
+    assert st.state_dir == tmp_path / "st" and st.raw_keep_s == 7 * 86400
+    assert topic_level("  ") == "unnamed"
+    with pytest.raises(ConfigError) as info:
+        parse_config({"mqtt": {"prefix": "a/+", "protocol": "4", "site": "x y"},
+                      "store": {"trend_raw_days": 30, "trend_hourly_days": 10}})
+    text = str(info.value)
+    for key in ("mqtt.prefix", "mqtt.protocol", "mqtt.site", "store.trend_hourly_days"):
+        assert key in text
