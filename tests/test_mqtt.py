@@ -318,3 +318,45 @@ def test_settings_from_config(tmp_path):
     text = str(info.value)
     for key in ("mqtt.prefix", "mqtt.protocol", "mqtt.site", "store.trend_hourly_days"):
         assert key in text
+
+
+def test_falls_back_to_311_when_broker_refuses_5(tmp_path):
+    """mosquitto 2 always speaks MQTT 5, so a broker that knows only 3.1.1 is played by a
+    socket that answers a version-5 CONNECT with the 3.1.1 CONNACK 'unacceptable protocol
+    version' (return code 1, MQTT 3.1.1 spec section 3.2.2.3) and accepts version 4."""
+    import socket
+    import threading
+
+    srv = socket.socket()
+    srv.bind(("127.0.0.1", 0))
+    srv.listen(4)
+    srv.settimeout(10)
+    levels, conns = [], []
+
+    def serve():
+        try:
+            while len(levels) < 2:
+                c, _ = srv.accept()
+                conns.append(c)
+                data = c.recv(4096)
+                level = data[2 + 2 + 4]  # fixed header (2), name length (2), "MQTT", level
+                levels.append(level)
+                c.sendall(b"\x20\x02\x00\x01" if level == 5 else b"\x20\x02\x00\x00")
+                if level == 5:
+                    c.close()
+        except OSError:
+            pass
+
+    threading.Thread(target=serve, daemon=True).start()
+    link = MqttLink(MqttSettings(host="127.0.0.1", port=srv.getsockname()[1], client_id="fb",
+                                 reconnect_min_s=0.1, reconnect_max_s=0.3),
+                    Outbox(tmp_path / "o.sqlite"))
+    link.start()
+    try:
+        assert link.wait_connected(5)
+        assert link.protocol == "3.1.1" and levels == [5, 4]
+    finally:
+        link.stop(0.2)
+        for c in conns:
+            c.close()
+        srv.close()
