@@ -52,9 +52,11 @@ def test_topics_and_builders():
             Topics("skv", bad, "pump1")
     with pytest.raises(ValueError, match="unit suffix"):
         measurements_payload({"overall": 1.0}, t_utc_s=0, capture_seq=1, state="normal")
-    m = measurements_payload({"vel_rms_mm_s": 2.5, "speed_hz": float("nan")}, t_utc_s=1.2345,
+    m = measurements_payload({"vel_rms_mm_s": 2.5, "speed_hz": float("nan"), "kurtosis": 3.0},
+                             t_utc_s=1.2345,
                              capture_seq=7, state=MachineState.NORMAL)
-    assert json.loads(encode(m))["values"] == {"vel_rms_mm_s": 2.5, "speed_hz": None}
+    assert json.loads(encode(m))["values"] == {"vel_rms_mm_s": 2.5, "speed_hz": None,
+                                               "kurtosis": 3.0}
     f = Finding(code="unbalance", confidence=0.8, severity=Severity.ALERT, title="Unbalance")
     assert findings_payload([f], t_utc_s=0, state="alert")["findings"][0]["severity"] == "alert"
 
