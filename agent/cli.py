@@ -123,6 +123,13 @@ def build_parser() -> argparse.ArgumentParser:
     s = sub.add_parser("demo", help="run the invented demo skid on the simulator (no hardware)")
     s.add_argument("-o", "--out", default="demo-out", help="folder for the demo's outputs")
     s.set_defaults(func=cmd_demo)
+
+    from agent import remote
+
+    s = sub.add_parser("remote", help="talk to a running agent over MQTT: list | pull | snapshot "
+                       "| ack | mode | feedback")
+    remote.build_parser(s)
+    s.set_defaults(func=remote.run)
     return p
 
 

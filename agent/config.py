@@ -20,6 +20,7 @@ from __future__ import annotations
 import dataclasses
 import difflib
 import math
+import re
 import tomllib
 import typing
 from dataclasses import dataclass, field
@@ -161,6 +162,10 @@ class StoreConfig:
     snapshot_max_mb: float = _f(500.0, range=(1.0, 1_000_000.0))
     snapshot_every_h: float = _f(24.0, range=(0.0, 10_000.0), help="scheduled reference snapshot; 0 = off")
     health_every_s: float = _f(60.0, range=(1.0, 86_400.0), help="how often the agent publishes its health")
+    trend_raw_days: float = _f(14.0, range=(1.0, 3650.0),
+                               help="keep one trend row per capture this long, then hourly rows")
+    trend_hourly_days: float = _f(400.0, range=(1.0, 36500.0),
+                                  help="keep hourly trend rows this long")
 
 
 @dataclass(frozen=True, slots=True)
@@ -169,8 +174,6 @@ class MqttConfig:
     host: str = _f("127.0.0.1")
     port: int = _f(1883, range=(1, 65535))
     prefix: str = _f("skidvib", help="topic prefix")
-    site: str = _f("", help="site level of the topics; '' = made from asset.site")
-    protocol: str = _f("auto", choices=("auto", "5", "3.1.1"), help="MQTT 5 with 3.1.1 fallback, or fixed")
     client_id: str = _f("")
     keepalive_s: int = _f(30, range=(5, 3600))
     username: str = _f("")
@@ -178,6 +181,11 @@ class MqttConfig:
     tls_ca: str = _f("")
     tls_cert: str = _f("")
     tls_key: str = _f("")
+    site: str = _f("", help="site level of the topic tree ('' = asset.site made topic-safe)")
+    protocol: str = _f("auto", choices=("auto", "5", "3.1.1"),
+                       help="MQTT version: auto tries 5 and falls back to 3.1.1")
+    outbox_max_mb: float = _f(16.0, range=(0.1, 10_000.0),
+                              help="bound of the on-disk outbox; measurements are shed first")
 
 
 @dataclass(frozen=True, slots=True)
@@ -341,6 +349,14 @@ def _cross_checks(cfg: AgentConfig, errors: list[str]) -> None:
         errors.append("source.replay.paths: at least one path is required when source.kind = 'replay'")
     if bool(cfg.mqtt.tls_cert) != bool(cfg.mqtt.tls_key):
         errors.append("mqtt.tls_cert / mqtt.tls_key: give both or neither")
+    if cfg.store.trend_hourly_days < cfg.store.trend_raw_days:
+        errors.append(f"store.trend_hourly_days {cfg.store.trend_hourly_days} must be >= "
+                      f"store.trend_raw_days {cfg.store.trend_raw_days}")
+    for key, value in (("mqtt.prefix", cfg.mqtt.prefix), ("mqtt.site", cfg.mqtt.site)):
+        if value and not all(re.fullmatch(r"[A-Za-z0-9_.-]{1,64}", part)
+                             for part in value.split("/")):
+            errors.append(f"{key}: {value!r} may hold only letters, digits, '_', '.', '-' "
+                          "(and '/' between levels in the prefix); no '+', '#' or spaces")
 
 
 def parse_config(data: dict, path: str = "<config>") -> AgentConfig:

@@ -50,6 +50,9 @@ OFFLINE = b"offline"
 UNIT_SUFFIXES = ("_hz", "_rpm", "_cpm", "_mm_s", "_ms2", "_g", "_db", "_s", "_pct",
                  "_ratio", "_count", "_v", "_degc", "_um")
 
+#: dimensionless quantities: the name says what it is, there is no unit to add
+DIMENSIONLESS = ("crest_factor", "kurtosis", "skewness", "confidence", "iso_zone")
+
 _LEVEL = re.compile(r"^[A-Za-z0-9_.-]{1,64}$")
 _CMD = re.compile(r"^[a-z][a-z_]{0,31}$")
 
@@ -134,9 +137,10 @@ def state_payload(state: str, since_utc_s: float, reason: str, action: str, urge
 
 def measurements_payload(values: Mapping[str, float], *, t_utc_s: float, capture_seq: int,
                          state: str, msg_id: str | None = None) -> dict:
-    """One capture's levels. Every key must end in a unit suffix (``UNIT_SUFFIXES``)."""
+    """One capture's levels. Every key ends in a unit suffix (``UNIT_SUFFIXES``) or is a
+    dimensionless quantity named in ``DIMENSIONLESS``."""
     for key in values:
-        if not key.endswith(UNIT_SUFFIXES):
+        if not key.endswith(UNIT_SUFFIXES) and key not in DIMENSIONLESS:
             raise ValueError(f"measurement key {key!r} has no unit suffix "
                              f"(one of {', '.join(UNIT_SUFFIXES)})")
     return {"schema": SCHEMA, "id": msg_id or new_message_id(), "t_utc_s": _t(t_utc_s),
@@ -210,6 +214,29 @@ class MqttSettings:
     @property
     def topics(self) -> Topics:
         return Topics(self.prefix, self.site, self.asset)
+
+
+def topic_level(name: str) -> str:
+    """A free-text name (site, tag) made into one safe topic level: ``"Plant 3 / North"``
+    → ``"plant_3_north"``."""
+    slug = re.sub(r"[^a-z0-9_.-]+", "_", name.strip().lower()).strip("_")
+    return slug[:64] or "unnamed"
+
+
+def settings_from_config(cfg) -> MqttSettings:
+    """:class:`MqttSettings` from an ``AgentConfig`` (its ``mqtt`` and ``asset`` sections)."""
+    m, a = cfg.mqtt, cfg.asset
+    base = Path(cfg.path).parent if getattr(cfg, "path", "") else Path(".")
+
+    def file(v: str) -> str | None:
+        return str(base / v) if v else None
+
+    return MqttSettings(
+        host=m.host, port=m.port, client_id=m.client_id or f"skidvib-{topic_level(a.tag)}",
+        keepalive_s=m.keepalive_s, username=m.username or None,
+        password_file=file(m.password_file), tls_ca_file=file(m.tls_ca),
+        tls_cert_file=file(m.tls_cert), tls_key_file=file(m.tls_key), protocol=m.protocol,
+        prefix=m.prefix, site=m.site or topic_level(a.site), asset=topic_level(a.tag))
 
 
 @dataclass(frozen=True, slots=True)

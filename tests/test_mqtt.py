@@ -52,9 +52,11 @@ def test_topics_and_builders():
             Topics("skv", bad, "pump1")
     with pytest.raises(ValueError, match="unit suffix"):
         measurements_payload({"overall": 1.0}, t_utc_s=0, capture_seq=1, state="normal")
-    m = measurements_payload({"vel_rms_mm_s": 2.5, "speed_hz": float("nan")}, t_utc_s=1.2345,
+    m = measurements_payload({"vel_rms_mm_s": 2.5, "speed_hz": float("nan"), "kurtosis": 3.0},
+                             t_utc_s=1.2345,
                              capture_seq=7, state=MachineState.NORMAL)
-    assert json.loads(encode(m))["values"] == {"vel_rms_mm_s": 2.5, "speed_hz": None}
+    assert json.loads(encode(m))["values"] == {"vel_rms_mm_s": 2.5, "speed_hz": None,
+                                               "kurtosis": 3.0}
     f = Finding(code="unbalance", confidence=0.8, severity=Severity.ALERT, title="Unbalance")
     assert findings_payload([f], t_utc_s=0, state="alert")["findings"][0]["severity"] == "alert"
 
@@ -292,3 +294,71 @@ def test_tls_wrong_ca_refused(tmp_path, tls_broker, pki):
                         "--key", str(pki.client_key), "-u", "agent", "-P", USERS["agent"],
                         "-t", f"{BASE}/x", "-m", "x"], capture_output=True, timeout=10)
     assert r.returncode != 0
+
+
+def test_settings_from_config(tmp_path):
+    from agent.config import parse_config
+    from agent.errors import ConfigError
+    from agent.mqtt import settings_from_config, topic_level
+    from agent.store import Store
+
+    cfg = parse_config({"asset": {"site": "Plant 3 / North", "tag": "P-101A"},
+                        "mqtt": {"prefix": "factory/vib", "password_file": "secret.pw",
+                                 "protocol": "3.1.1"},
+                        "store": {"state_dir": "st", "trend_raw_days": 7}},
+                       str(tmp_path / "agent.toml"))
+    s = settings_from_config(cfg)
+    assert s.topics.base == "factory/vib/plant_3_north/p-101a"
+    assert s.password_file == str(tmp_path / "secret.pw") and s.protocol == "3.1.1"
+    assert s.client_id == "skidvib-p-101a"
+    st = Store.from_config(cfg)
+    assert st.state_dir == tmp_path / "st" and st.raw_keep_s == 7 * 86400
+    assert topic_level("  ") == "unnamed"
+    with pytest.raises(ConfigError) as info:
+        parse_config({"mqtt": {"prefix": "a/+", "protocol": "4", "site": "x y"},
+                      "store": {"trend_raw_days": 30, "trend_hourly_days": 10}})
+    text = str(info.value)
+    for key in ("mqtt.prefix", "mqtt.protocol", "mqtt.site", "store.trend_hourly_days"):
+        assert key in text
+
+
+def test_falls_back_to_311_when_broker_refuses_5(tmp_path):
+    """mosquitto 2 always speaks MQTT 5, so a broker that knows only 3.1.1 is played by a
+    socket that answers a version-5 CONNECT with the 3.1.1 CONNACK 'unacceptable protocol
+    version' (return code 1, MQTT 3.1.1 spec section 3.2.2.3) and accepts version 4."""
+    import socket
+    import threading
+
+    srv = socket.socket()
+    srv.bind(("127.0.0.1", 0))
+    srv.listen(4)
+    srv.settimeout(10)
+    levels, conns = [], []
+
+    def serve():
+        try:
+            while len(levels) < 2:
+                c, _ = srv.accept()
+                conns.append(c)
+                data = c.recv(4096)
+                level = data[2 + 2 + 4]  # fixed header (2), name length (2), "MQTT", level
+                levels.append(level)
+                c.sendall(b"\x20\x02\x00\x01" if level == 5 else b"\x20\x02\x00\x00")
+                if level == 5:
+                    c.close()
+        except OSError:
+            pass
+
+    threading.Thread(target=serve, daemon=True).start()
+    link = MqttLink(MqttSettings(host="127.0.0.1", port=srv.getsockname()[1], client_id="fb",
+                                 reconnect_min_s=0.1, reconnect_max_s=0.3),
+                    Outbox(tmp_path / "o.sqlite"))
+    link.start()
+    try:
+        assert link.wait_connected(5)
+        assert link.protocol == "3.1.1" and levels == [5, 4]
+    finally:
+        link.stop(0.2)
+        for c in conns:
+            c.close()
+        srv.close()

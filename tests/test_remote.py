@@ -75,7 +75,7 @@ def agent(tmp_path, mqtt_broker):
 
 
 def _cli(agent, *args, user="analyst", timeout_s=5):
-    cmd = [sys.executable, "-m", "agent.remote", "--broker", f"127.0.0.1:{agent.broker.port}",
+    cmd = [sys.executable, "-m", "agent", "remote", "--broker", f"127.0.0.1:{agent.broker.port}",
            "--prefix", "skv", "--site", "plant1", "--asset", "pump1", "--user", user,
            "--password-file", _pw(agent.tmp, user), "--timeout-s", str(timeout_s), *args]
     return subprocess.run(cmd, capture_output=True, text=True, timeout=30)
