@@ -194,8 +194,10 @@ class Daemon:
         from agent.store import Store
 
         state_dir = resolve_path(self.cfg, self.cfg.store.state_dir)
-        self.store = Store(state_dir, max_count=self.cfg.store.snapshot_max_count,
-                           max_bytes=int(self.cfg.store.snapshot_max_mb * 1024 * 1024), clock=self.wall)
+        st = self.cfg.store
+        self.store = Store(state_dir, max_count=st.snapshot_max_count, max_bytes=int(st.snapshot_max_mb * 1024 * 1024),
+                           raw_keep_s=st.trend_raw_days * 86400.0, hourly_keep_s=st.trend_hourly_days * 86400.0,
+                           clock=self.wall)
         self._restore_state(state_dir)
         if self.use_mqtt:
             self._open_mqtt()
@@ -206,7 +208,8 @@ class Daemon:
         from agent.remote import BasicControls, RemoteService, RequestHandler
 
         settings = settings_from_config(self.cfg)
-        outbox = Outbox(self.store.outbox_path)
+        outbox = Outbox(self.store.outbox_path, max_bytes=int(self.cfg.mqtt.outbox_max_mb * 1024 * 1024),
+                        overflow_topic=f"{settings.topics.base}/events")
         self.link = MqttLink(settings, outbox, clock=self.wall)
         self.controls = BasicControls(snapshot_fn=self._snapshot_now, relearn_fn=self._relearn, clock=self.wall)
         self.remote = RemoteService(self.link, RequestHandler(settings.topics, self.store, self.controls, clock=self.wall))
