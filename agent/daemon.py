@@ -188,6 +188,7 @@ class Daemon:
         self.open_alarm_id: str | None = None
         self.next_scheduled_snapshot_mono = mono() + cfg.store.snapshot_every_h * 3600.0
         self.next_health_mono = 0.0
+        self.next_housekeeping_mono = mono() + 3600.0
 
     # ── edges ──
     def _open_edges(self) -> None:
@@ -333,6 +334,18 @@ class Daemon:
             self.health.publish_errors += 1
             self.health.last_error = str(exc)
 
+    def _housekeeping(self, now_mono: float) -> None:
+        """Hourly: fold old trend rows into hourly rows, apply snapshot retention."""
+        if self.store is None or now_mono < self.next_housekeeping_mono:
+            return
+        self.next_housekeeping_mono = now_mono + 3600.0
+        try:
+            merged, deleted = self.store.downsample(self.wall())
+            self.store.prune()
+            log_event("housekeeping", trend_rows_merged=merged, trend_rows_deleted=deleted)
+        except StoreError as exc:
+            self._count_store_error(exc)
+
     def _handle_result(self, result: CaptureResult, caps: tuple[Capture, ...]) -> None:
         snapshot_id = ""
         if self.store is not None:
@@ -463,6 +476,7 @@ class Daemon:
                 gate.progress()
                 gate.maybe_ping(self.mono())
                 self._publish_health(self.mono())
+                self._housekeeping(self.mono())
                 notifier.status(f"{self.ms.state.value}; {self.health.captures_done} captures")
                 if self.max_captures is not None and self.health.captures_done >= self.max_captures:
                     break
