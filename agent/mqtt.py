@@ -225,11 +225,12 @@ def topic_level(name: str) -> str:
 
 def settings_from_config(cfg) -> MqttSettings:
     """:class:`MqttSettings` from an ``AgentConfig`` (its ``mqtt`` and ``asset`` sections)."""
+    from agent.config import resolve_path
+
     m, a = cfg.mqtt, cfg.asset
-    base = Path(cfg.path).parent if getattr(cfg, "path", "") else Path(".")
 
     def file(v: str) -> str | None:
-        return str(base / v) if v else None
+        return str(resolve_path(cfg, v)) if v else None
 
     return MqttSettings(
         host=m.host, port=m.port, client_id=m.client_id or f"skidvib-{topic_level(a.tag)}",

@@ -97,6 +97,7 @@ class BasicControls:
 
     snapshot_fn: Callable[[], str]
     relearn_fn: Callable[[], None] | None = None
+    ack_fn: Callable[[str], None] | None = None  # e.g. unpin the alarm's snapshot
     clock: Callable[[], float] = time.time
     mode: str = "monitor"
     mode_until_utc_s: float | None = None
@@ -122,6 +123,8 @@ class BasicControls:
         for a in ids:
             self.acked[a] = {**self.open_alarms.pop(a), "note": note, "by": by,
                              "acked_utc_s": self.clock()}
+            if self.ack_fn is not None:
+                self.ack_fn(a)
         return ids
 
     def set_mode(self, mode, duration_s):

@@ -190,11 +190,10 @@ class Store:
     @classmethod
     def from_config(cls, cfg, clock=time.time) -> "Store":
         """The store of an ``AgentConfig`` (state_dir relative to the config file)."""
+        from agent.config import resolve_path
+
         st = cfg.store
-        d = Path(st.state_dir)
-        if not d.is_absolute() and getattr(cfg, "path", ""):
-            d = Path(cfg.path).parent / d
-        return cls(d, max_count=st.snapshot_max_count,
+        return cls(resolve_path(cfg, st.state_dir), max_count=st.snapshot_max_count,
                    max_bytes=int(st.snapshot_max_mb * 1024 * 1024),
                    raw_keep_s=st.trend_raw_days * 86400.0,
                    hourly_keep_s=st.trend_hourly_days * 86400.0, clock=clock)

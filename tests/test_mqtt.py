@@ -309,10 +309,10 @@ def test_settings_from_config(tmp_path):
                        str(tmp_path / "agent.toml"))
     s = settings_from_config(cfg)
     assert s.topics.base == "factory/vib/plant_3_north/p-101a"
-    assert s.password_file == str(tmp_path / "secret.pw") and s.protocol == "3.1.1"
+    assert s.password_file == str((tmp_path / "secret.pw").resolve()) and s.protocol == "3.1.1"
     assert s.client_id == "skidvib-p-101a"
     st = Store.from_config(cfg)
-    assert st.state_dir == tmp_path / "st" and st.raw_keep_s == 7 * 86400
+    assert st.state_dir == (tmp_path / "st").resolve() and st.raw_keep_s == 7 * 86400
     assert topic_level("  ") == "unnamed"
     with pytest.raises(ConfigError) as info:
         parse_config({"mqtt": {"prefix": "a/+", "protocol": "4", "site": "x y"},

@@ -56,8 +56,9 @@ def agent(tmp_path, mqtt_broker):
     sid = _snap(store, T0)
     relearns = []
     controls = BasicControls(snapshot_fn=lambda: _snap(store, time.time(), "on_request", 1000),
-                             relearn_fn=lambda: relearns.append(1))
+                             relearn_fn=lambda: relearns.append(1), ack_fn=store.unpin_alarm)
     controls.open_alarms["A1"] = {"state": "alert"}
+    store.pin(sid, "A1")
     s = MqttSettings(host="127.0.0.1", port=mqtt_broker.port, client_id="agent-remote",
                      username="agent", password_file=_pw(tmp_path, "agent"), prefix="skv",
                      site="plant1", asset="pump1", reconnect_min_s=0.1, reconnect_max_s=0.5)
@@ -115,6 +116,7 @@ def test_commands_do_what_they_say(agent, tmp_path):
     assert until == pytest.approx(time.time() + 3600, abs=30)
     assert _cli(agent, "ack", "--alarm-id", "A1", "--note", "seen").returncode == 0
     assert "A1" in agent.controls.acked and not agent.controls.open_alarms
+    assert not agent.store.pinned_ids()  # the alarm's snapshot may now age out
     r = _cli(agent, "snapshot")
     new = json.loads(r.stdout)["snapshot_id"]
     assert new.endswith("-on_request") and agent.store.resolve(new) is not None
