@@ -7,10 +7,31 @@ import signal
 import subprocess
 import sys
 
+from pathlib import Path
+
 import pytest
 
-from tests.broker import Subscriber
-from tests.test_daemon import BASE, write_config
+from tests.broker import USERS, Subscriber
+
+ROOT = Path(__file__).resolve().parents[1]
+BASE = "skv/plant1/p-201"
+
+
+def write_config(tmp_path, port: int) -> Path:
+    """The demo config, pointed at the test broker and a state folder in tmp."""
+    pw = tmp_path / "agent.pw"
+    pw.write_text(USERS["agent"] + "\n")
+    text = (ROOT / "config/demo-skid.toml").read_text()
+    text = text.replace('state_dir = "../demo-out/state"', 'state_dir = "state"')
+    text = text.replace('scenario = "../replay/scenarios/demo.toml"',
+                        f'scenario = "{ROOT / "replay/scenarios/demo.toml"}"')
+    text = text.replace("interval_s = 60.0", "interval_s = 5.0")
+    text = text.replace('prefix = "skidvib"', 'prefix = "skv"\nsite = "plant1"\n'
+                        f'username = "agent"\npassword_file = "{pw}"')
+    text = text.replace("port = 1883", f"port = {port}")
+    p = tmp_path / "agent.toml"
+    p.write_text(text)
+    return p
 
 
 def _simulator_ready() -> bool:
