@@ -121,3 +121,41 @@ def test_bad_arguments(tmp_path):
         ob.enqueue(TOPIC, b"x" * 2000, kind=Kind.KEPT)
     with pytest.raises(ValueError, match="max_bytes"):
         Outbox(tmp_path / "p.sqlite", max_bytes=10)
+
+
+def test_disk_full_raises_store_error_and_keeps_rows(tmp_path):
+    """On a full disk enqueue raises StoreError (the daemon counts it and keeps monitoring);
+    the rows already queued stay intact and the outbox works again once there is space."""
+    import subprocess
+
+    from agent.errors import StoreError
+
+    mnt = tmp_path / "disk"
+    mnt.mkdir()
+    r = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=512k", "tmpfs", str(mnt)],
+                       capture_output=True)
+    if r.returncode != 0:
+        pytest.skip("cannot mount a small tmpfs here (needs root)")
+    try:
+        ob = Outbox(mnt / "o.sqlite", max_bytes=4 * 1024 * 1024)
+        _fill(ob, Kind.KEPT, 5)
+        filler = mnt / "filler"
+        with open(filler, "wb", buffering=0) as fh:
+            try:
+                while True:
+                    fh.write(b"\0" * 4096)
+            except OSError:
+                pass
+        with pytest.raises(StoreError, match="outbox"):
+            for i in range(200):  # WAL pages fill the last free blocks, then the write fails
+                ob.enqueue(TOPIC, b"y" * 4000, kind=Kind.KEPT)
+        assert [m.msg_id for m in ob.peek(limit=5)] == [f"KEPT-{i}" for i in range(5)]
+        filler.unlink()
+        assert ob.enqueue(TOPIC, b"{}", kind=Kind.KEPT) is not None
+        ob.close()
+        ob2 = Outbox(mnt / "o.sqlite")
+        assert ob2.recovered_from is None  # not corrupted by the failed writes
+        assert [m.msg_id for m in ob2.peek(limit=5)] == [f"KEPT-{i}" for i in range(5)]
+        ob2.close()
+    finally:
+        subprocess.run(["umount", "-l", str(mnt)], check=False)

@@ -156,11 +156,10 @@ def test_disk_full_raises_and_corrupts_nothing(small_disk):
     first = _snap(st, T0)
     before = _digest(small_disk / "state" / "snapshots" / first)
     filler = small_disk / "filler"
-    with open(filler, "wb") as fh:  # eat the rest of the disk
+    with open(filler, "wb", buffering=0) as fh:  # eat the rest of the disk
         try:
             while True:
                 fh.write(b"\0" * 65536)
-                fh.flush()
         except OSError:
             pass
     with pytest.raises(StoreError, match="disk full"):
