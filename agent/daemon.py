@@ -212,7 +212,8 @@ class Daemon:
         outbox = Outbox(self.store.outbox_path, max_bytes=int(self.cfg.mqtt.outbox_max_mb * 1024 * 1024),
                         overflow_topic=f"{settings.topics.base}/events")
         self.link = MqttLink(settings, outbox, clock=self.wall)
-        self.controls = BasicControls(snapshot_fn=self._snapshot_now, relearn_fn=self._relearn, clock=self.wall)
+        self.controls = BasicControls(snapshot_fn=self._snapshot_now, relearn_fn=self._relearn, clock=self.wall,
+                                      ack_fn=self._alarm_acknowledged)
         self.remote = RemoteService(self.link, RequestHandler(settings.topics, self.store, self.controls, clock=self.wall))
         self.link.start()
         log_event("mqtt_start", host=settings.host, port=settings.port, base=settings.topics.base)
@@ -260,6 +261,16 @@ class Daemon:
             raise RequestError("no_capture", "no capture has been taken yet")
         return self._save_snapshot(self.last_result, self.last_captures, "on_request")
 
+    def _alarm_acknowledged(self, alarm_id: str) -> None:
+        """An operator acknowledged the alarm (request thread): its snapshot may now age out."""
+        try:
+            self.store.unpin_alarm(alarm_id)
+        except StoreError as exc:
+            self._count_store_error(exc)
+        if self.open_alarm_id == alarm_id:
+            self.open_alarm_id = None
+        log_event("alarm_acknowledged", alarm_id=alarm_id)
+
     def _relearn(self) -> None:
         log_event("relearn_requested")
         self.ms = dataclasses.replace(self.ms, baselines=None, engine=None)
@@ -290,7 +301,7 @@ class Daemon:
                 self.link.send("state", m.state_payload(result.state, result.since_utc_s, result.reason, result.action,
                                                         result.urgency, t_utc_s=t, mode=mode),
                                kind=Kind.KEPT, retain=True, replace_key="state")
-            values = {k: v for k, v in result.features.items() if k.endswith(m.UNIT_SUFFIXES)}
+            values = {k: v for k, v in result.features.items() if k.endswith(m.UNIT_SUFFIXES) or k in m.DIMENSIONLESS}
             if result.speed_hz:
                 values["speed_hz"] = result.speed_hz
                 values["speed_rpm"] = result.speed_hz * 60.0
