@@ -1,0 +1,220 @@
+"""The order view: spectra on a shaft-order axis and peak labels (pure functions).
+
+* :func:`resample_to_angle` — computed order tracking: the waveform is
+  re-sampled at equal increments of shaft angle, the angle being the
+  integral of a :class:`agent.speed.SpeedProfile` (K. R. Fyfe, E. D. S.
+  Munck, "Analysis of computed order tracking", MSSP 11(2), 1997). A tone
+  locked to the shaft then sits on one order line however the speed moved.
+* :func:`order_spectrum` — the power spectrum of the angle-domain waveform,
+  on an order axis (cycles per revolution).
+* :func:`order_levels` — band r.m.s. around 0.5X, 1X … 10X and each
+  synchronous forcing order, from an ordinary spectrum and a speed: levels
+  that follow speed, so baselines can compare captures at different speeds.
+* :func:`label_peaks` — every peak that matches an expected tone of the
+  machine train (:func:`agent.kinematics.expected_frequencies`) within that
+  tone's tolerance gets its name, family and order.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+
+import numpy as np
+from scipy import interpolate
+
+from agent.kinematics import ExpectedTone
+from agent.model import Peak
+from agent.spectra import Spectrum, SpectrumPlan, accel_spectrum, band_rms
+from agent.speed import SpeedProfile
+
+#: default order bands: 0.5X, 1X … 10X
+DEFAULT_ORDERS = (0.5,) + tuple(float(k) for k in range(1, 11))
+
+
+def resample_to_angle(
+    accel_ms2: np.ndarray, fs_hz: float, profile: SpeedProfile, samples_per_rev: int = 64
+) -> np.ndarray:
+    """Waveform re-sampled at ``samples_per_rev`` equal steps of shaft angle.
+
+    Shaft angle (revolutions) is the integral of ``profile``; samples are
+    read off a cubic spline through the time samples at the times each
+    angle step is reached. ``samples_per_rev`` must keep the highest order
+    of interest below samples_per_rev/2, and samples_per_rev × the highest
+    speed must stay below the sample rate (no up-sampling beyond the data).
+    Only whole revolutions are returned.
+    """
+    x = np.asarray(accel_ms2, dtype=np.float64)
+    if x.ndim != 1 or x.size < 16:
+        raise ValueError(f"accel_ms2 must be 1-D with at least 16 samples, got shape {x.shape}")
+    if not fs_hz > 0:
+        raise ValueError(f"fs_hz must be > 0, got {fs_hz!r}")
+    if int(samples_per_rev) != samples_per_rev or samples_per_rev < 4:
+        raise ValueError(f"samples_per_rev must be an integer >= 4, got {samples_per_rev!r}")
+    t = np.arange(x.size) / fs_hz
+    speed = profile.at(t)
+    if np.any(speed <= 0):
+        raise ValueError("speed profile is not positive over the whole capture")
+    if samples_per_rev * float(speed.max()) > fs_hz:
+        raise ValueError(
+            f"samples_per_rev {samples_per_rev} × {speed.max():.2f} Hz exceeds fs {fs_hz:.0f} Hz; "
+            "use fewer samples per revolution"
+        )
+    # angle in revolutions at each sample: integral of the polynomial profile
+    poly = np.polynomial.Polynomial(profile.coeffs).integ()
+    rev = poly(t) - poly(0.0)
+    n_rev = int(np.floor(rev[-1]))
+    if n_rev < 2:
+        raise ValueError(f"capture holds only {rev[-1]:.2f} revolutions; need at least 2")
+    rev_new = np.arange(n_rev * int(samples_per_rev)) / samples_per_rev
+    t_new = np.interp(rev_new, rev, t)
+    spline = interpolate.CubicSpline(t, x)
+    return spline(t_new)
+
+
+@dataclass(frozen=True, slots=True)
+class OrderSpectrum:
+    """Power spectrum on an order axis (tone r.m.s.² per line, like Spectrum).
+
+    ``order`` is in cycles per revolution of the tracked shaft;
+    ``order_resolution`` the line spacing in orders; ``speed_hz_mean`` and
+    ``speed_span_hz`` describe the speed over the capture.
+    """
+
+    spectrum: Spectrum  # its f_hz axis holds orders, not Hz
+    speed_hz_mean: float
+    speed_span_hz: float
+    samples_per_rev: int
+
+    @property
+    def order(self) -> np.ndarray:
+        return self.spectrum.f_hz
+
+    @property
+    def power(self) -> np.ndarray:
+        return self.spectrum.power
+
+    @property
+    def order_resolution(self) -> float:
+        return self.spectrum.bin_width_hz
+
+
+def order_spectrum(
+    accel_ms2: np.ndarray,
+    fs_hz: float,
+    profile: SpeedProfile,
+    *,
+    samples_per_rev: int = 64,
+    window: str = "hann",
+    revs_per_segment: int | None = None,
+) -> OrderSpectrum:
+    """Order spectrum of a capture after computed order tracking.
+
+    ``revs_per_segment`` None uses one segment over all whole revolutions
+    (finest order resolution, 1/revolutions).
+    """
+    theta = resample_to_angle(accel_ms2, fs_hz, profile, samples_per_rev)
+    lines = None if revs_per_segment is None else revs_per_segment * samples_per_rev // 2
+    if lines is None:
+        lines = theta.size // 2
+    plan = SpectrumPlan.build(float(samples_per_rev), theta.size, window=window, lines=lines)
+    spec = accel_spectrum(theta, plan)
+    return OrderSpectrum(
+        spectrum=spec,
+        speed_hz_mean=profile.mean_hz,
+        speed_span_hz=profile.span_hz,
+        samples_per_rev=int(samples_per_rev),
+    )
+
+
+@dataclass(frozen=True, slots=True)
+class OrderLevels:
+    """Band r.m.s. around each order of the reference shaft.
+
+    ``levels`` pairs (order, r.m.s.) in the spectrum's unit (``unit``);
+    each band spans order × speed ± ``half_width_hz`` (its own value in
+    ``half_widths_hz``).
+    """
+
+    speed_hz: float
+    orders: tuple[float, ...]
+    levels: tuple[float, ...]
+    half_widths_hz: tuple[float, ...]
+    unit: str
+    quantity: str
+
+    def as_dict(self) -> dict[float, float]:
+        return dict(zip(self.orders, self.levels))
+
+    def to_json(self) -> dict:
+        return {
+            "speed_hz": round(self.speed_hz, 4),
+            "unit": self.unit,
+            "basis": "rms",
+            "quantity": self.quantity,
+            "bands": [
+                {"order": o, "rms": float(f"{v:.6g}"), "half_width_hz": round(w, 4)}
+                for o, v, w in zip(self.orders, self.levels, self.half_widths_hz)
+            ],
+        }
+
+
+def order_levels(
+    spec: Spectrum,
+    speed_hz: float,
+    orders: tuple[float, ...] = DEFAULT_ORDERS,
+    *,
+    min_lines: float = 3.0,
+    rel_width: float = 0.02,
+) -> OrderLevels:
+    """Band r.m.s. around each order: ± max(``min_lines`` lines, ``rel_width`` × f).
+
+    Orders whose band would pass the spectrum's top are given as NaN.
+    """
+    if not speed_hz > 0:
+        raise ValueError(f"speed_hz must be > 0, got {speed_hz!r}")
+    if not orders:
+        raise ValueError("orders must not be empty")
+    levels, widths = [], []
+    for o in orders:
+        if not o > 0:
+            raise ValueError(f"orders must be > 0, got {o!r}")
+        f = o * speed_hz
+        hw = max(min_lines * spec.bin_width_hz, rel_width * f)
+        widths.append(float(hw))
+        if f + hw > spec.fmax_hz:
+            levels.append(float("nan"))
+            continue
+        levels.append(band_rms(spec, f - hw, f + hw))
+    return OrderLevels(
+        speed_hz=float(speed_hz),
+        orders=tuple(float(o) for o in orders),
+        levels=tuple(levels),
+        half_widths_hz=tuple(widths),
+        unit=spec.unit,
+        quantity=spec.quantity,
+    )
+
+
+def label_peaks(peaks: tuple[Peak, ...], expected: tuple[ExpectedTone, ...]) -> tuple[Peak, ...]:
+    """Peaks with ``label``, ``family`` and ``order`` set where a tone matches.
+
+    A peak matches an expected tone when |f_peak − f_tone| ≤ the tone's
+    tolerance; of several matches the closest relative to its tolerance
+    wins (ties go to the earlier tone of ``expected``, which lists shaft
+    harmonics first). ``order`` is the peak's measured order, f_peak/f_tone ×
+    the tone's order. Unmatched peaks are returned unchanged.
+    """
+    out = []
+    for p in peaks:
+        best, best_d = None, np.inf
+        for e in expected:
+            tol = e.tolerance_hz
+            d = abs(p.freq_hz - e.freq_hz)
+            if d <= tol and d / tol < best_d:
+                best, best_d = e, d / tol
+        if best is None:
+            out.append(p)
+            continue
+        order = best.order * p.freq_hz / best.freq_hz if best.freq_hz > 0 else None
+        out.append(replace(p, label=best.name, family=best.family, order=order))
+    return tuple(out)
