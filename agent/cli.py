@@ -54,12 +54,12 @@ def cmd_analyze(args) -> int:
     )
     analysis = analyse_capture(rec.to_capture(), cfg)
     if args.json:
-        doc = analysis_to_json(analysis, cfg)
+        doc = analysis_to_json(analysis, cfg, orders=args.orders)
         doc = {"recording": rec.path, "units_in_file": rec.units_in_file, **doc}
         json.dump(doc, sys.stdout, indent=2)
         sys.stdout.write("\n")
     else:
-        print(analysis_text(analysis, cfg, rec))
+        print(analysis_text(analysis, cfg, rec, orders=args.orders))
     return EXIT_OK
 
 
@@ -98,6 +98,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("recording", help="WAV, CSV/TXT, NPY, NPZ or MAT file")
     s.add_argument("-c", "--config", help="config file (machine, analysis settings)")
     s.add_argument("--json", action="store_true", help="print one JSON document")
+    s.add_argument("--orders", action="store_true", help="add the order view (levels at 0.5X, 1X ... 10X, forcing orders)")
     s.add_argument("--channel", help="variable/column name or index to read")
     s.add_argument("--fs", type=float, help="sample rate in Hz, when the file does not say")
     s.add_argument("--units", choices=("g", "m/s2", "mm/s", "V"), help="units of the samples")

@@ -114,6 +114,36 @@ class BearingConfig:
 
 
 @dataclass(frozen=True, slots=True)
+class ShaftConfig:
+    name: str = _f(help="shaft name, e.g. 'pump' or 'fan'")
+    vanes: int = _f(0, range=(0, 64), help="impeller vanes on this shaft (0 = none)")
+    blades: int = _f(0, range=(0, 128), help="fan blades on this shaft (0 = none)")
+
+
+@dataclass(frozen=True, slots=True)
+class CouplingConfig:
+    driver: str = _f(help="driving shaft name")
+    driven: str = _f(help="driven shaft name (same speed)")
+
+
+@dataclass(frozen=True, slots=True)
+class BeltConfig:
+    driver: str = _f(help="driving shaft name")
+    driven: str = _f(help="driven shaft name")
+    driver_diameter_mm: float = _f(range=(1.0, 10_000.0), help="driver sheave pitch diameter")
+    driven_diameter_mm: float = _f(range=(1.0, 10_000.0), help="driven sheave pitch diameter")
+    length_mm: float = _f(0.0, range=(0.0, 100_000.0), help="belt pitch length (0 = unknown: no belt rate)")
+
+
+@dataclass(frozen=True, slots=True)
+class GearConfig:
+    driver: str = _f(help="driving shaft name")
+    driven: str = _f(help="driven shaft name")
+    driver_teeth: int = _f(range=(1, 10_000))
+    driven_teeth: int = _f(range=(1, 10_000))
+
+
+@dataclass(frozen=True, slots=True)
 class MachineConfig:
     speed_rpm: tuple[float, float] = _f((600.0, 3600.0), help="[low, high] running-speed search range")
     line_hz: float = _f(50.0, choices=(50.0, 60.0))
@@ -125,6 +155,13 @@ class MachineConfig:
     iso_group: int = _f(2, choices=(1, 2), help="ISO 20816-3 group: 1 > 300 kW, 2 = 15-300 kW")
     support: str = _f("rigid", choices=("rigid", "flexible"))
     bearings: tuple[BearingConfig, ...] = _f(factory=tuple)
+    drive: str = _f("line", choices=("line", "vfd"),
+                    help="'line' = motor on the mains (speed just below 120·f/p); 'vfd' = variable-speed drive")
+    reference_shaft: str = _f("motor", help="shaft whose speed is measured; vanes/blades/rotor_bars above sit on it")
+    shafts: tuple[ShaftConfig, ...] = _f(factory=tuple, help="other shafts of the train")
+    couplings: tuple[CouplingConfig, ...] = _f(factory=tuple)
+    belts: tuple[BeltConfig, ...] = _f(factory=tuple)
+    gears: tuple[GearConfig, ...] = _f(factory=tuple)
 
 
 @dataclass(frozen=True, slots=True)
@@ -340,6 +377,22 @@ def _cross_checks(cfg: AgentConfig, errors: list[str]) -> None:
             )
         if names.count(b.name) > 1:
             errors.append(f"machine.bearings[{i}].name: {b.name!r} is used more than once")
+    if mach.poles % 2:
+        errors.append(f"machine.poles: {mach.poles} must be even (0 = unknown)")
+    if mach.drive == "line" and mach.poles:
+        sync_rpm = 120.0 * mach.line_hz / mach.poles
+        if hi < sync_rpm * 0.92 or lo >= sync_rpm:
+            errors.append(
+                f"machine.speed_rpm: [{lo:g}, {hi:g}] does not cover the line-fed {mach.poles}-pole speed just "
+                f"below {sync_rpm:g} r/min (120·{mach.line_hz:g}/{mach.poles}); widen it or set machine.drive = 'vfd'"
+            )
+    if not any(e is None for e in (mach.shafts, mach.couplings, mach.belts, mach.gears, mach.bearings)):
+        from agent.kinematics import train_from_config
+
+        try:
+            train_from_config(mach)
+        except ValueError as exc:
+            errors.append(f"machine (train): {exc}")
     edges = cfg.baseline.speed_bin_edges_rpm
     if list(edges) != sorted(set(edges)):
         errors.append(f"baseline.speed_bin_edges_rpm: {list(edges)} must be strictly increasing")
@@ -437,6 +490,10 @@ __all__ = [
     "AssetConfig",
     "BaselineConfig",
     "BearingConfig",
+    "BeltConfig",
+    "CouplingConfig",
+    "GearConfig",
+    "ShaftConfig",
     "MachineConfig",
     "MqttConfig",
     "SensorConfig",

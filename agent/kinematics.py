@@ -394,3 +394,49 @@ def expected_frequencies(
     if fmax_hz is not None:
         tones = [t for t in tones if t.freq_hz <= fmax_hz]
     return tuple(tones)
+
+
+def train_from_config(machine) -> MachineTrain:
+    """The machine train described by a ``[machine]`` config section.
+
+    ``machine`` is an :class:`agent.config.MachineConfig` (duck-typed, so this
+    module does not import the config): the reference shaft carries
+    ``vanes``, ``blades`` and the motor (``poles``, ``line_hz``,
+    ``rotor_bars``, ``drive``); ``shafts`` add further shafts, linked by
+    ``couplings``, ``belts`` and ``gears``; each bearing sits on its
+    ``shaft`` ('' = the reference shaft). Raises ValueError naming the
+    problem when the train is inconsistent.
+    """
+    ref = machine.reference_shaft or "motor"
+    extra = {s.name: s for s in machine.shafts}
+    ref_vanes, ref_blades = machine.vanes, machine.blades
+    if ref in extra:
+        ref_vanes = ref_vanes or extra[ref].vanes
+        ref_blades = ref_blades or extra[ref].blades
+    bearings: dict[str, list[BearingSpec]] = {}
+    names = [ref] + [n for n in extra if n != ref]
+    for b in machine.bearings:
+        shaft = b.shaft or ref
+        if shaft not in names:
+            raise ValueError(f"bearing {b.name!r} sits on unknown shaft {shaft!r}; shafts are {names}")
+        orders = bearing_orders(b.balls, b.ball_diameter_mm, b.pitch_diameter_mm, b.contact_angle_deg)
+        bearings.setdefault(shaft, []).append(BearingSpec(b.name, orders))
+    shafts = [Shaft(ref, vanes=ref_vanes, blades=ref_blades, bearings=tuple(bearings.get(ref, ())))]
+    for n, s in extra.items():
+        if n == ref:
+            continue
+        shafts.append(Shaft(n, vanes=s.vanes, blades=s.blades, bearings=tuple(bearings.get(n, ()))))
+    links: list[Link] = [Coupling(c.driver, c.driven) for c in machine.couplings]
+    links += [
+        Belt(b.driver, b.driven, b.driver_diameter_mm, b.driven_diameter_mm, b.length_mm or None)
+        for b in machine.belts
+    ]
+    links += [GearPair(g.driver, g.driven, g.driver_teeth, g.driven_teeth) for g in machine.gears]
+    motor = Motor(
+        shaft=ref,
+        poles=machine.poles or None,
+        line_hz=machine.line_hz,
+        rotor_bars=machine.rotor_bars or None,
+        variable_speed=getattr(machine, "drive", "line") == "vfd",
+    )
+    return MachineTrain(shafts=tuple(shafts), links=tuple(links), motor=motor, reference=ref)

@@ -22,10 +22,13 @@ from dataclasses import dataclass, replace
 import numpy as np
 from scipy import interpolate
 
-from agent.kinematics import ExpectedTone
+from agent.kinematics import ExpectedTone, expected_frequencies, train_from_config
 from agent.model import Peak
-from agent.spectra import Spectrum, SpectrumPlan, accel_spectrum, band_rms
-from agent.speed import SpeedProfile
+from agent.spectra import Spectrum, SpectrumPlan, accel_spectrum, band_rms, velocity_spectrum
+from agent.speed import SpeedEstimate, SpeedProfile, estimate_speed, speed_profile, speed_spectrum
+
+#: tie-break between tones at the same distance: forcing names say more than nX
+_RANK = {"vane_pass": 0, "blade_pass": 0, "gear_mesh": 0, "rotor_bar": 0, "shaft": 1}
 
 #: default order bands: 0.5X, 1X … 10X
 DEFAULT_ORDERS = (0.5,) + tuple(float(k) for k in range(1, 11))
@@ -97,6 +100,12 @@ class OrderSpectrum:
     def order_resolution(self) -> float:
         return self.spectrum.bin_width_hz
 
+    def at_mean_speed(self) -> Spectrum:
+        """The tracked spectrum on a Hz axis at the mean speed (order × mean
+        speed), so Hz-based tools (velocity, band r.m.s., order levels) apply."""
+        s = self.spectrum
+        return replace(s, f_hz=s.f_hz * self.speed_hz_mean, bin_width_hz=s.bin_width_hz * self.speed_hz_mean)
+
 
 def order_spectrum(
     accel_ms2: np.ndarray,
@@ -145,14 +154,15 @@ class OrderLevels:
     def as_dict(self) -> dict[float, float]:
         return dict(zip(self.orders, self.levels))
 
-    def to_json(self) -> dict:
+    def to_json(self, basis: str = "rms") -> dict:
+        """``basis`` "peak" gives √2 × r.m.s. (tones), as the peaks list does."""
+        k = 2**0.5 if basis == "peak" else 1.0
         return {
             "speed_hz": round(self.speed_hz, 4),
-            "unit": self.unit,
-            "basis": "rms",
+            "unit": f"{self.unit} {basis}",
             "quantity": self.quantity,
             "bands": [
-                {"order": o, "rms": float(f"{v:.6g}"), "half_width_hz": round(w, 4)}
+                {"order": o, "amp": None if v != v else float(f"{v * k:.6g}"), "half_width_hz": round(w, 4)}
                 for o, v, w in zip(self.orders, self.levels, self.half_widths_hz)
             ],
         }
@@ -200,21 +210,148 @@ def label_peaks(peaks: tuple[Peak, ...], expected: tuple[ExpectedTone, ...]) -> 
 
     A peak matches an expected tone when |f_peak − f_tone| ≤ the tone's
     tolerance; of several matches the closest relative to its tolerance
-    wins (ties go to the earlier tone of ``expected``, which lists shaft
-    harmonics first). ``order`` is the peak's measured order, f_peak/f_tone ×
+    wins; on a tie a forcing tone (vane/blade pass, gear mesh, rotor bar)
+    beats the shaft harmonic it coincides with ("vane pass" rather than "6X"),
+    and a shaft harmonic beats the rest. ``order`` is the peak's measured order, f_peak/f_tone ×
     the tone's order. Unmatched peaks are returned unchanged.
     """
     out = []
     for p in peaks:
-        best, best_d = None, np.inf
+        best, best_key = None, (np.inf, 0)
         for e in expected:
             tol = e.tolerance_hz
             d = abs(p.freq_hz - e.freq_hz)
-            if d <= tol and d / tol < best_d:
-                best, best_d = e, d / tol
+            key = (round(d / tol, 9), _RANK.get(e.family, 2))
+            if d <= tol and key < best_key:
+                best, best_key = e, key
         if best is None:
             out.append(p)
             continue
         order = best.order * p.freq_hz / best.freq_hz if best.freq_hz > 0 else None
         out.append(replace(p, label=best.name, family=best.family, order=order))
     return tuple(out)
+
+
+# ------------------------------------------------------------------ one capture's speed view
+
+
+@dataclass(frozen=True, slots=True)
+class SpeedView:
+    """Speed, expected tones, labelled peaks and order levels of one capture.
+
+    ``order_levels`` come from the ordinary velocity spectrum, or — when the
+    speed moved enough within the capture to smear the highest order band
+    by more than a line (``tracked`` True) — from the order-tracked spectrum
+    mapped to the mean speed.
+    """
+
+    speed: SpeedEstimate
+    profile: SpeedProfile | None
+    expected: tuple[ExpectedTone, ...]
+    peaks: tuple[Peak, ...]
+    order_levels: OrderLevels | None
+    tracked: bool = False
+
+    def to_json(self) -> dict:
+        out = self.speed.to_json()
+        if self.profile is not None:
+            out["span_hz"] = round(self.profile.span_hz, 4)
+            out["span_fraction"] = round(self.profile.span_fraction, 5)
+            out["tracked_harmonic"] = self.profile.harmonic
+        out["order_tracked"] = self.tracked
+        return out
+
+
+def speed_view(
+    accel_ms2: np.ndarray,
+    fs_hz: float,
+    machine,
+    *,
+    vel: Spectrum,
+    peaks: tuple[Peak, ...],
+    fmax_hz: float,
+    f_low_hz: float,
+    previous: SpeedEstimate | None = None,
+) -> SpeedView:
+    """Find running speed (no tachometer), label ``peaks``, compute order levels.
+
+    ``machine`` is the ``[machine]`` config section (duck-typed): search range
+    ``speed_rpm``, ``line_hz``, ``poles``, ``drive``, the train. ``vel`` is the
+    capture's velocity spectrum (mm/s, high-passed at ``f_low_hz``) whose
+    ``peaks`` are labelled.
+    """
+    train = train_from_config(machine)
+    lo_rpm, hi_rpm = machine.speed_rpm
+    x = np.asarray(accel_ms2, dtype=np.float64)
+    spec = speed_spectrum(x, fs_hz)
+    hi_hz = min(hi_rpm / 60.0, 0.45 * fs_hz)
+    speed = estimate_speed(
+        spec,
+        speed_range_hz=(lo_rpm / 60.0, hi_hz),
+        line_hz=machine.line_hz,
+        poles=machine.poles or None,
+        forcing_orders=train.forcing_orders(),
+        previous=previous,
+        variable_speed=machine.drive == "vfd",
+    )
+    if not speed.found:
+        return SpeedView(speed=speed, profile=None, expected=(), peaks=peaks, order_levels=None)
+    f0 = speed.speed_hz
+    expected = expected_frequencies(train, f0, resolution_hz=vel.bin_width_hz, fmax_hz=fmax_hz)
+    labelled = label_peaks(peaks, expected)
+    orders = tuple(sorted(set(DEFAULT_ORDERS) | {round(o, 6) for o in train.forcing_orders()}))
+    profile = None
+    try:
+        profile = speed_profile(x, fs_hz, f0, line_hz=machine.line_hz)
+    except ValueError:
+        profile = None  # capture too short to follow a harmonic: levels from the plain spectrum
+    if profile is not None and abs(profile.mean_hz - f0) > 0.005 * f0 + speed.bin_width_hz:
+        profile = None  # the ridge wandered off the shaft family: not a credible profile
+    tracked = False
+    levels_spec = vel
+    # track when the speed change would smear the highest order band by more
+    # than a line, and the change stands clear of the ridge's own scatter
+    if (
+        profile is not None
+        and profile.span_hz * max(orders) > vel.bin_width_hz
+        and profile.span_hz > 4.0 * profile.ridge_rms_hz
+    ):
+        spr = int(min(256, fs_hz / (1.1 * (f0 + profile.span_hz))))
+        if spr >= 2 * max(orders) + 2:
+            try:
+                osp = order_spectrum(x, fs_hz, profile, samples_per_rev=spr, window=vel.window)
+                levels_spec = velocity_spectrum(osp.at_mean_speed(), f_low_hz=f_low_hz)
+                tracked = True
+            except ValueError:
+                levels_spec = vel
+    ref_speed = profile.mean_hz if tracked else f0
+    levels = order_levels(levels_spec, ref_speed, orders)
+    return SpeedView(
+        speed=speed, profile=profile, expected=expected, peaks=labelled, order_levels=levels, tracked=tracked
+    )
+
+
+
+def speed_text(view: SpeedView, *, basis: str = "rms", orders: bool = False) -> list[str]:
+    """Console lines for the speed (and, with ``orders``, the order view)."""
+    s = view.speed
+    if not s.found:
+        return ["Speed       not found: " + "; ".join(s.notes)]
+    parts = [f"Speed       {s.rpm:.1f} r/min = {s.speed_hz:.3f} Hz (1X), confidence {s.confidence:.2f}"]
+    if s.slip is not None:
+        parts[0] += f", slip {s.slip:.2%}"
+    detail = f"            from {s.harmonics_used} tones ({s.method}), no tachometer"
+    if view.profile is not None:
+        detail += f"; span within capture {view.profile.span_hz:.3f} Hz ({view.profile.span_fraction:.2%})"
+    parts.append(detail)
+    parts += [f"            note: {n}" for n in s.notes]
+    if orders and view.order_levels is not None:
+        lv = view.order_levels
+        k = 2**0.5 if basis == "peak" else 1.0
+        how = "order-tracked" if view.tracked else "from the spectrum"
+        parts += ["", f"Order view ({lv.quantity}, {lv.unit} {basis}, band around each order, {how})"]
+        parts.append(f"  {'order':>7} {'Hz':>9} {lv.unit:>9}")
+        for o, v in zip(lv.orders, lv.levels):
+            val = "    (n/a)" if v != v else f"{v * k:9.4f}"
+            parts.append(f"  {o:7.2f} {o * lv.speed_hz:9.2f} {val}")
+    return parts

@@ -13,6 +13,8 @@ from typing import Any
 from agent.config import AgentConfig, iso_band_hz
 from agent.features import OverallLevels, TimeMetrics, overall_levels, time_metrics
 from agent.model import Capture, Finding, Peak
+from agent.orders import SpeedView, speed_view
+from agent.speed import SpeedEstimate
 from agent.spectra import (
     Spectrum,
     SpectrumPlan,
@@ -38,6 +40,7 @@ class Analysis:
     fmax_hz: float
     findings: tuple[Finding, ...] = ()
     extras: dict = field(default_factory=dict)
+    speed: SpeedView | None = None
 
 
 def plan_for(cfg: AgentConfig, fs_hz: float, n_samples: int) -> SpectrumPlan:
@@ -57,8 +60,13 @@ def analysis_fmax_hz(cfg: AgentConfig, fs_hz: float) -> float:
     return cfg.analysis.fmax_hz if cfg.analysis.fmax_hz else 0.4 * fs_hz
 
 
-def analyse_capture(capture: Capture, cfg: AgentConfig, plan: SpectrumPlan | None = None) -> Analysis:
-    """Spectra, overall levels and peaks of one capture."""
+def analyse_capture(
+    capture: Capture,
+    cfg: AgentConfig,
+    plan: SpectrumPlan | None = None,
+    previous_speed: SpeedEstimate | None = None,
+) -> Analysis:
+    """Spectra, overall levels, running speed, labelled peaks and order levels of one capture."""
     if plan is None or plan.fs_hz != capture.fs_hz or plan.nperseg > capture.n_samples:
         plan = plan_for(cfg, capture.fs_hz, capture.n_samples)
     band = iso_band_hz(cfg)
@@ -77,6 +85,11 @@ def analyse_capture(capture: Capture, cfg: AgentConfig, plan: SpectrumPlan | Non
         fmax_hz=fmax,
         max_peaks=cfg.analysis.max_peaks,
     )
+    sv = speed_view(
+        capture.accel_ms2, capture.fs_hz, cfg.machine, vel=vel, peaks=peaks, fmax_hz=fmax,
+        f_low_hz=band[0], previous=previous_speed,
+    )
+    peaks = sv.peaks
     return Analysis(
         capture=capture,
         plan=plan,
@@ -87,14 +100,16 @@ def analyse_capture(capture: Capture, cfg: AgentConfig, plan: SpectrumPlan | Non
         vel_floor=floor,
         peaks=peaks,
         fmax_hz=fmax,
+        speed=sv,
     )
 
 
-def analysis_to_json(a: Analysis, cfg: AgentConfig) -> dict:
-    """The documented JSON document of ``skidvib analyze --json`` (schema 1)."""
+def analysis_to_json(a: Analysis, cfg: AgentConfig, *, orders: bool = False) -> dict:
+    """The documented JSON document of ``skidvib analyze --json`` (schema 1);
+    ``orders`` adds the order view (band r.m.s. per order of the reference shaft)."""
     basis = cfg.analysis.amplitude_basis
     k = 2**0.5 if basis == "peak" else 1.0
-    return {
+    doc = {
         "schema": 1,
         "channel": a.capture.channel,
         "fs_hz": a.capture.fs_hz,
@@ -119,9 +134,16 @@ def analysis_to_json(a: Analysis, cfg: AgentConfig) -> dict:
                 "unit": f"mm/s {basis}",
                 "height_db": round(p.height_db, 1),
                 "label": p.label,
+                "family": p.family,
                 "order": None if p.order is None else round(p.order, 3),
             }
             for p in a.peaks
         ],
         "findings": [f.to_json() for f in a.findings],
     }
+    if a.speed is not None:
+        doc["speed"] = a.speed.to_json()
+        if orders:
+            lv = a.speed.order_levels
+            doc["orders"] = None if lv is None else {**lv.to_json(basis), "order_tracked": a.speed.tracked}
+    return doc

@@ -6,7 +6,7 @@ from agent.config import AgentConfig
 from agent.features import ZONE_MEANING
 
 
-def analysis_text(a, cfg: AgentConfig, rec=None) -> str:
+def analysis_text(a, cfg: AgentConfig, rec=None, *, orders: bool = False) -> str:
     """A short analyst's note of one analysis: facts, overall levels, zone, peaks, findings."""
     from agent.cli import SAFETY_NOTE
 
@@ -28,6 +28,12 @@ def analysis_text(a, cfg: AgentConfig, rec=None) -> str:
         f"  acceleration  {o.acc_rms_g:8.4f} g r.m.s., {o.acc_peak_g:.4f} g peak (full band)",
         f"  crest factor  {o.crest_factor:8.2f}    kurtosis {o.kurtosis:.2f} (3 = Gaussian)",
         "",
+    ]
+    if a.speed is not None:
+        from agent.orders import speed_text
+
+        lines += speed_text(a.speed, basis=basis, orders=orders) + [""]
+    lines += [
         f"Peaks (velocity, mm/s {basis}; {len(a.peaks)} above the local floor)",
         f"  {'Hz':>10} {'CPM':>10} {'order':>7} {'mm/s':>9} {'dB>floor':>8}  label",
     ]

@@ -39,8 +39,10 @@ peaks rather than on raw lines):
 
 Confidence is the product of an absolute part, 1 − exp(−score/20 dB), and a
 margin part, min(1, 2·(1 − runner-up/best)), where the runner-up is the best
-candidate more than 3 % (or 4 lines) away. A score below ``min_score_db``
-means no credible rotation: ``found`` is False ("not running").
+candidate more than 3 % (or 4 lines) away and not at 1/3, 1/2, 2 or 3
+times the winner. A score below ``min_score_db`` — or a single tone below
+twice that with no harmonic or forcing order beside it — means no credible
+rotation: ``found`` is False ("not running").
 
 Speed that changes within a capture is handled by :func:`speed_profile`
 (ridge of the strongest tracked harmonic in a short-time spectrum, smoothed
@@ -349,6 +351,13 @@ def estimate_speed(
             used += 1
         if den > 0:
             f_fit = num / den
+    if used < 2 and score[best] < 2.0 * min_score_db:
+        return _not_found(
+            spec,
+            f"only one weak tone ({f_fit:.2f} Hz, evidence {score[best]:.1f} dB) and no harmonic family: "
+            "no credible rotation",
+            excess0,
+        )
     if not lo - bin_hz <= f_fit <= hi + bin_hz:
         f_fit = f0
         notes.append("least-squares fit left the range; grid value kept")
@@ -461,6 +470,7 @@ class SpeedProfile:
     coeffs: tuple[float, ...]
     harmonic: int
     duration_s: float
+    ridge_rms_hz: float = 0.0  # r.m.s. scatter of the frame ridge about the fit (speed, Hz)
 
     def __post_init__(self) -> None:
         for name in ("t_s", "speed_hz"):
@@ -505,13 +515,13 @@ def speed_profile(
     line_hz: float | None = None,
     harmonics: tuple[int, ...] = (1, 2, 3, 4, 5, 6),
     frame_s: float | None = None,
-    max_change: float = 0.15,
+    max_change: float = 0.06,
     degree: int = 3,
 ) -> SpeedProfile:
     """Speed profile within a capture from the ridge of one tracked harmonic.
 
-    The harmonic h with the most energy around h × ``speed_hz_guess`` (away
-    from the line-frequency family) is followed frame by frame in a
+    The harmonic h standing highest above the local floor near
+    h × ``speed_hz_guess`` (away from the line-frequency family) is followed frame by frame in a
     short-time Hann spectrum (frames of ``frame_s``, default capture/8, 75 %
     overlap); each frame's ridge frequency is Grandke-interpolated
     (:func:`agent.spectra.tone_at`), divided by h, and a polynomial of
@@ -535,24 +545,28 @@ def speed_profile(
     starts = np.arange(0, x.size - nfr + 1, step)
     bin_hz = plan.bin_width_hz
 
-    # choose the harmonic: most band energy in the whole capture, not on the line family
+    # choose the harmonic standing highest above the local floor at h × guess
+    # (a shaft-locked tone, not the strongest energy in a band that may hold
+    # bearing tones), away from the line-frequency family
     whole = speed_spectrum(x, fs_hz)
-    best_h, best_e = None, -1.0
+    top = min(whole.fmax_hz, max(harmonics) * speed_hz_guess * (1 + max_change) + 10 * whole.bin_width_hz)
+    whole = _truncate(whole, top)
+    floor = noise_floor(whole)
+    best_h, best_e = None, -np.inf
     for h in harmonics:
         c = h * speed_hz_guess
         lo_b, hi_b = c * (1 - max_change), c * (1 + max_change)
-        if hi_b >= fs_hz / 2:
+        if hi_b >= min(fs_hz / 2, whole.fmax_hz):
             continue
         if line_hz is not None and any(lo_b - 2 * bin_hz <= k * line_hz <= hi_b + 2 * bin_hz for k in _LINE_FAMILY):
             continue
-        sel = (whole.f_hz >= lo_b) & (whole.f_hz <= hi_b)
-        e = float(whole.power[sel].sum())
+        half = max(3 * whole.bin_width_hz, 0.5 * max_change * c)
+        sel = np.flatnonzero((whole.f_hz >= c - half) & (whole.f_hz <= c + half))
+        if sel.size == 0:
+            continue
+        e = float(np.max(10 * np.log10(whole.power[sel] / floor[sel])))
         if e > best_e:
             best_h, best_e = h, e
-    if best_h is None:
-        raise ValueError(
-            f"no harmonic of {speed_hz_guess:.2f} Hz lies clear of the line-frequency family below fs/2"
-        )
     h = best_h
     lo_b, hi_b = h * speed_hz_guess * (1 - max_change), h * speed_hz_guess * (1 + max_change)
     klo = max(1, int(np.floor(lo_b / bin_hz)))
@@ -579,10 +593,13 @@ def speed_profile(
     keep = np.abs(resid) <= max(4 * 1.4826 * mad, 0.05 * bin_hz / h)
     if keep.sum() >= deg + 2:
         coeffs = np.polynomial.polynomial.polyfit(t_c[keep], f_c[keep], deg, w=w_c[keep])
+    resid = (f_c - np.polynomial.polynomial.polyval(t_c, coeffs))[keep]
+    ridge_rms = float(np.sqrt(np.mean(resid**2))) if resid.size else 0.0
     return SpeedProfile(
         t_s=t_c,
         speed_hz=np.polynomial.polynomial.polyval(t_c, coeffs),
         coeffs=tuple(float(c) for c in coeffs),
         harmonic=int(h),
         duration_s=float(duration_s),
+        ridge_rms_hz=ridge_rms,
     )

@@ -12,6 +12,7 @@ from agent.kinematics import ExpectedTone
 from agent.model import STANDARD_GRAVITY_MS2, Peak
 from agent.orders import label_peaks, order_levels, order_spectrum, resample_to_angle
 from agent.spectra import SpectrumPlan, accel_spectrum, find_peaks
+from tests.conftest import SHARED_DATA
 from agent.speed import (
     SpeedEstimate,
     SpeedProfile,
@@ -21,19 +22,6 @@ from agent.speed import (
     speed_spectrum,
     synchronous_speed_hz,
 )
-
-
-def _shared_data() -> Path | None:
-    """The shared reference data folder: ../shared/data beside the project, or
-    the first ``shared/data`` found walking up from this file."""
-    here = Path(__file__).resolve()
-    cand = here.parents[1].parent / "shared" / "data"
-    if cand.is_dir():
-        return cand
-    for p in here.parents:
-        if (p / "shared" / "data").is_dir():
-            return p / "shared" / "data"
-    return None
 
 
 def tones(fs_hz, duration_s, comps, *, noise_rms=0.0, seed=0):
@@ -264,7 +252,8 @@ def test_order_levels_follow_speed():
         assert d[1.0] == pytest.approx(0.7, rel=0.01)  # band r.m.s. by Parseval (sum ÷ ENBW)
         assert d[3.0] == pytest.approx(0.2, rel=0.01)
         assert d[0.5] < 0.01 and d[6.0] < 0.01
-        assert lv.to_json()["bands"][1]["order"] == 1.0
+        j = lv.to_json("peak")["bands"][1]
+        assert j["order"] == 1.0 and j["amp"] == pytest.approx(0.7 * 2**0.5, rel=0.01)
 
 
 def test_label_peaks_names_matching_tones_only():
@@ -291,7 +280,7 @@ def test_label_peaks_names_matching_tones_only():
 
 
 def _cwru_records():
-    root = _shared_data()
+    root = SHARED_DATA
     if root is None:
         return []
     man = root / "bearings" / "manifest.csv"
@@ -344,3 +333,18 @@ def test_find_peaks_and_estimate_agree_on_1x_line():
     est = estimate_speed(spec, speed_range_hz=(10.0, 60.0), line_hz=50.0)
     pk = min(find_peaks(spec, fmax_hz=200.0), key=lambda p: abs(p.freq_hz - f0))
     assert abs(pk.freq_hz - est.speed_hz) < 0.1 * spec.bin_width_hz
+
+
+@pytest.mark.skipif(SHARED_DATA is None or not (SHARED_DATA / "bearings" / "ims").is_dir(),
+                    reason="shared IMS data (../shared/data/bearings/ims) not found")
+def test_ims_records_never_give_a_wrong_speed():
+    # IMS set 1 (Qiu et al. 2006): shaft at 2000 r/min, 20 kHz, 1 s snapshots,
+    # 8 channels. These raw spectra show no 1X family (heights at 1X..12X are
+    # at most ~9 dB above the running median at 1 Hz lines); whatever the
+    # estimate says, it must not be a confident wrong speed.
+    for f in sorted((SHARED_DATA / "bearings" / "ims").iterdir()):
+        data = np.loadtxt(f)
+        for ch in range(data.shape[1]):
+            x = data[:, ch] * STANDARD_GRAVITY_MS2
+            est = estimate_speed(speed_spectrum(x, 20000.0), speed_range_hz=(10.0, 60.0), line_hz=60.0)
+            assert not est.found or abs(est.rpm - 2000.0) / 2000.0 < 0.01, (f.name, ch, est)
