@@ -472,9 +472,12 @@ def summary(cfg: AgentConfig) -> str:
     lines = [
         f"asset      {cfg.asset.site} / {cfg.asset.name} [{cfg.asset.tag}]",
         f"source     {s.kind}, {s.fs_hz:g} Hz, {s.capture_s:g} s captures every {s.interval_s:g} s, point '{s.channel}'",
-        f"machine    {m.speed_rpm[0]:g}-{m.speed_rpm[1]:g} r/min, line {m.line_hz:g} Hz, poles {m.poles or 'n/a'}, "
+        f"machine    {m.speed_rpm[0]:g}-{m.speed_rpm[1]:g} r/min, {m.drive} drive, line {m.line_hz:g} Hz, "
+        f"poles {m.poles or 'n/a'}, "
         f"vanes {m.vanes}, blades {m.blades}, ISO 20816-3 group {m.iso_group} {m.support}",
         f"bearings   {', '.join(b.name for b in m.bearings) or 'none configured'}",
+        f"train      {m.reference_shaft}" + "".join(f", {s.name}" for s in m.shafts)
+        + f" ({len(m.couplings)} couplings, {len(m.belts)} belts, {len(m.gears)} gear pairs)",
         f"analysis   {a.window} window, lines {a.lines or 'auto'}, overlap {a.overlap:g}, ISO band "
         f"{iso_band_hz(cfg)[0]:g}-{iso_band_hz(cfg)[1]:g} Hz",
         f"store      {cfg.store.state_dir}",

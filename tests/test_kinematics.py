@@ -126,3 +126,57 @@ def test_bad_trains_are_refused_with_a_reason(kwargs, msg):
 def test_given_multipliers_are_checked():
     with pytest.raises(ValueError, match="bpfo"):
         bearing_orders_given(ftf=0.4, bsf=2.3, bpfo=0.0, bpfi=5.4)
+
+
+# --------------------------------------------------------------- from the [machine] config
+
+
+def _cfg(machine: dict):
+    from agent.config import parse_config
+
+    return parse_config({"machine": machine})
+
+
+def test_train_from_config_with_belt_gear_and_bearings():
+    from agent.kinematics import train_from_config
+
+    cfg = _cfg({
+        "speed_rpm": [1000.0, 1800.0], "line_hz": 60.0, "poles": 4, "rotor_bars": 44, "blades": 0,
+        "shafts": [{"name": "fan", "blades": 12}, {"name": "drum"}],
+        "belts": [{"driver": "motor", "driven": "fan", "driver_diameter_mm": 150.0,
+                   "driven_diameter_mm": 300.0, "length_mm": 1800.0}],
+        "gears": [{"driver": "fan", "driven": "drum", "driver_teeth": 17, "driven_teeth": 51}],
+        "bearings": [{"name": "fan DE", "balls": 9, "ball_diameter_mm": 7.94, "pitch_diameter_mm": 39.04,
+                      "shaft": "fan"}],
+    })
+    train = train_from_config(cfg.machine)
+    assert train.ratios == pytest.approx({"motor": 1.0, "fan": 0.5, "drum": 0.5 * 17 / 51})
+    assert train.forcing_orders() == (6.0, 8.5)  # 12 blades × 0.5; 17 teeth × 0.5
+    names = {t.name for t in expected_frequencies(train, 29.5)}
+    assert {"blade pass fan", "gear mesh fan-drum", "belt rate motor-fan", "BPFO fan fan DE", "RBPF"} <= names
+
+
+@pytest.mark.parametrize(
+    "machine,msg",
+    [
+        ({"shafts": [{"name": "fan"}]}, "not linked to the reference shaft"),
+        ({"belts": [{"driver": "motor", "driven": "pump", "driver_diameter_mm": 100.0,
+                     "driven_diameter_mm": 100.0}]}, "unknown shaft 'pump'"),
+        ({"bearings": [{"name": "b", "balls": 8, "ball_diameter_mm": 10.0, "pitch_diameter_mm": 50.0,
+                        "shaft": "pump"}]}, "unknown shaft 'pump'"),
+        ({"drive": "inverter"}, "choose one of 'line', 'vfd'"),
+        ({"poles": 5}, "must be even"),
+        ({"speed_rpm": [600.0, 1000.0], "line_hz": 50.0, "poles": 2}, "set machine.drive = 'vfd'"),
+        ({"gears": [{"driver": "motor", "driven": "x", "driver_teeth": 0, "driven_teeth": 20}]}, "driver_teeth"),
+    ],
+)
+def test_bad_machine_config_is_reported(machine, msg):
+    from agent.errors import ConfigError
+
+    with pytest.raises(ConfigError, match=msg):
+        _cfg(machine)
+
+
+def test_vfd_allows_any_range():
+    cfg = _cfg({"speed_rpm": [600.0, 1000.0], "line_hz": 50.0, "poles": 2, "drive": "vfd"})
+    assert cfg.machine.drive == "vfd"

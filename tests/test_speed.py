@@ -348,3 +348,93 @@ def test_ims_records_never_give_a_wrong_speed():
             x = data[:, ch] * STANDARD_GRAVITY_MS2
             est = estimate_speed(speed_spectrum(x, 20000.0), speed_range_hz=(10.0, 60.0), line_hz=60.0)
             assert not est.found or abs(est.rpm - 2000.0) / 2000.0 < 0.01, (f.name, ch, est)
+
+
+# --------------------------------------------------------------- wired into analyze
+
+
+def _run_cli(*args):
+    import subprocess
+    import sys
+
+    root = Path(__file__).resolve().parents[1]
+    return subprocess.run([sys.executable, "-m", "agent", *map(str, args)], capture_output=True, text=True, cwd=root)
+
+
+def _demo_like_wav(tmp_path, rpm=1476.0, fs=25600.0, n=65536):
+    from agent.recordings import write_wav_with_sidecar
+
+    f1 = rpm / 60.0
+    rng = np.random.default_rng(5)
+    t = np.arange(n) / fs
+    acc = rng.normal(0, 0.05, n)
+    for f, v_mm_s in ((f1, 1.6), (2 * f1, 0.7), (6 * f1, 0.9), (100.0, 0.25)):  # (Hz, mm/s r.m.s.)
+        acc += np.sqrt(2) * v_mm_s / 1000.0 * 2 * np.pi * f * np.sin(2 * np.pi * f * t + rng.uniform(0, 6))
+    p = tmp_path / "skid.wav"
+    write_wav_with_sidecar(p, acc, fs, {"channel": "pump DE"})
+    return p
+
+
+def test_analyze_reports_speed_labels_and_order_view(tmp_path):
+    import json
+
+    root = Path(__file__).resolve().parents[1]
+    p = _demo_like_wav(tmp_path)
+    res = _run_cli("analyze", p, "-c", root / "config/demo-skid.toml", "--json", "--orders")
+    assert res.returncode == 0, res.stderr
+    doc = json.loads(res.stdout)
+    sp = doc["speed"]
+    assert sp["found"] and sp["rpm"] == pytest.approx(1476.0, rel=0.002)
+    assert 0.5 < sp["confidence"] <= 1.0
+    labels = {pk["label"]: pk for pk in doc["peaks"] if pk["label"]}
+    assert labels["1X"]["order"] == pytest.approx(1.0, abs=0.002)
+    assert labels["vane pass"]["family"] == "vane_pass"  # 6 vanes × 1X (demo config)
+    assert labels["2xLF"]["freq_hz"] == pytest.approx(100.0, abs=0.05)
+    bands = {b["order"]: b for b in doc["orders"]["bands"]}
+    assert bands[1.0]["amp"] == pytest.approx(1.6, rel=0.03)  # mm/s r.m.s. put in at 1X
+    assert bands[6.0]["amp"] == pytest.approx(0.9, rel=0.03)
+    assert doc["orders"]["unit"] == "mm/s rms"
+    human = _run_cli("analyze", p, "-c", root / "config/demo-skid.toml", "--orders")
+    assert human.returncode == 0, human.stderr
+    assert "Speed       1476" in human.stdout and "Order view" in human.stdout and "vane pass" in human.stdout
+    plain = _run_cli("analyze", p, "-c", root / "config/demo-skid.toml", "--json")
+    assert "orders" not in json.loads(plain.stdout)
+
+
+@pytest.mark.skipif(not _CWRU, reason="shared CWRU data (../shared/data/bearings) not found")
+def test_analyze_cwru_record_with_rig_config(tmp_path):
+    import json
+
+    # CWRU 130.mat: outer race fault, 1796 r/min in X130RPM; US rig: 60 Hz, 4-pole
+    cfg = tmp_path / "cwru.toml"
+    cfg.write_text('[machine]\nspeed_rpm = [600.0, 3600.0]\nline_hz = 60.0\npoles = 4\n\n'
+                   '[[machine.bearings]]\nname = "DE 6205"\nballs = 9\nball_diameter_mm = 7.94\n'
+                   'pitch_diameter_mm = 39.04\n')
+    path = next(p for p, _ in _CWRU if p.name == "130.mat")
+    res = _run_cli("analyze", path, "-c", cfg, "--channel", "X130_DE_time", "--fs", "12000", "--units", "g", "--json")
+    assert res.returncode == 0, res.stderr
+    doc = json.loads(res.stdout)
+    assert doc["speed"]["rpm"] == pytest.approx(1796.0, rel=0.01)
+    assert doc["speed"]["slip"] == pytest.approx((1800 - 1796) / 1800, abs=0.002)
+    fams = {pk["family"] for pk in doc["peaks"]}
+    assert "shaft" in fams
+
+
+def test_pipeline_order_tracks_a_ramping_capture():
+    from agent.config import parse_config
+    from agent.model import Capture
+    from agent.pipeline import analyse_capture
+
+    cfg = parse_config({"machine": {"speed_rpm": [600.0, 3600.0], "line_hz": 50.0, "drive": "vfd"},
+                        "source": {"fs_hz": 4096.0, "capture_s": 8.0}})
+    fs, dur = 4096.0, 8.0
+    # 5 % ramp (25 -> 26.25 Hz); 1X 1.0, 2X 0.4, 3X 0.2 m/s² r.m.s.
+    ramp = Capture(accel_ms2=_chirp(25.0, 26.25, fs, dur), fs_hz=fs)
+    a = analyse_capture(ramp, cfg)
+    assert a.speed.speed.found
+    assert a.speed.tracked
+    assert a.speed.profile.span_fraction == pytest.approx(0.0488, rel=0.05)
+    steady = analyse_capture(Capture(accel_ms2=_chirp(25.625, 25.625, fs, dur), fs_hz=fs), cfg)
+    assert not steady.speed.tracked
+    # the tracked 1X order level matches the steady capture's (velocity, same r.m.s. acceleration)
+    assert a.speed.order_levels.as_dict()[1.0] == pytest.approx(steady.speed.order_levels.as_dict()[1.0], rel=0.03)
