@@ -217,7 +217,7 @@ class MachineTrain:
     links: tuple[Link, ...] = ()
     motor: Motor | None = None
     reference: str = ""
-    ratios: dict = field(default=None, compare=False)  # filled in __post_init__
+    ratios: dict = field(default=None, init=False, compare=False)  # filled in __post_init__
 
     def __post_init__(self) -> None:
         if not self.shafts:

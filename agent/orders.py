@@ -25,7 +25,14 @@ from scipy import interpolate
 from agent.kinematics import ExpectedTone, expected_frequencies, train_from_config
 from agent.model import Peak
 from agent.spectra import Spectrum, SpectrumPlan, accel_spectrum, band_rms, velocity_spectrum
-from agent.speed import SpeedEstimate, SpeedProfile, estimate_speed, speed_profile, speed_spectrum
+from agent.speed import (
+    SpeedEstimate,
+    SpeedProfile,
+    estimate_speed,
+    resolution_check,
+    speed_profile,
+    speed_spectrum,
+)
 
 #: tie-break between tones at the same distance: forcing names say more than nX
 _RANK = {"vane_pass": 0, "blade_pass": 0, "gear_mesh": 0, "rotor_bar": 0, "shaft": 1}
@@ -285,6 +292,10 @@ def speed_view(
     x = np.asarray(accel_ms2, dtype=np.float64)
     spec = speed_spectrum(x, fs_hz)
     hi_hz = min(hi_rpm / 60.0, 0.45 * fs_hz)
+    if lo_rpm / 60.0 >= hi_hz:
+        why = f"sample rate {fs_hz:g} Hz is too low for the speed range {lo_rpm:g}-{hi_rpm:g} r/min"
+        none = SpeedEstimate(speed_hz=0.0, confidence=0.0, found=False, method="none", notes=(why,))
+        return SpeedView(speed=none, profile=None, expected=(), peaks=peaks, order_levels=None)
     speed = estimate_speed(
         spec,
         speed_range_hz=(lo_rpm / 60.0, hi_hz),
@@ -297,6 +308,17 @@ def speed_view(
     if not speed.found:
         return SpeedView(speed=speed, profile=None, expected=(), peaks=peaks, order_levels=None)
     f0 = speed.speed_hz
+    if not speed.resolution_flag:
+        # the capture can separate 2X from 2×LF, but can the analysis spectrum?
+        flag, need_s, _ = resolution_check(f0, machine.line_hz, vel.bin_width_hz)
+        if flag and need_s is not None:
+            lines = int(np.ceil(need_s * fs_hz / 2.0))
+            note = (
+                f"the analysis spectrum's {vel.bin_width_hz:.3f} Hz lines cannot separate 2X ({2 * f0:.2f} Hz) "
+                f"from twice line frequency ({2 * machine.line_hz:g} Hz): segments of at least {need_s:.1f} s "
+                f"(analysis.lines >= {lines}) would"
+            )
+            speed = replace(speed, resolution_flag=True, required_capture_s=need_s, notes=speed.notes + (note,))
     expected = expected_frequencies(train, f0, resolution_hz=vel.bin_width_hz, fmax_hz=fmax_hz)
     labelled = label_peaks(peaks, expected)
     orders = tuple(sorted(set(DEFAULT_ORDERS) | {round(o, 6) for o in train.forcing_orders()}))

@@ -270,7 +270,7 @@ def estimate_speed(
             continue
         kept.append(p)
     if not kept:
-        return _not_found(spec, "no peaks above the noise outside the line-frequency family", excess0)
+        return _not_found(spec, "no peaks above the noise outside the line-frequency family")
     kept.sort(key=lambda p: p.freq_hz)
     pk_f = np.array([p.freq_hz for p in kept] + [np.inf])
     pk_ev = np.array([min(p.height_db - excess0, _CAP_DB) for p in kept] + [0.0])
@@ -308,7 +308,6 @@ def estimate_speed(
             spec,
             f"no credible rotation in {lo * 60:.0f}-{hi * 60:.0f} r/min "
             f"(best family evidence {score[best]:.1f} dB < {min_score_db:.1f} dB)",
-            excess0,
         )
     # sub-multiple check (pitch detectors' octave test): when the odd
     # multiples of f/m carry as much evidence as the multiples of f, the
@@ -356,7 +355,6 @@ def estimate_speed(
             spec,
             f"only one weak tone ({f_fit:.2f} Hz, evidence {score[best]:.1f} dB) and no harmonic family: "
             "no credible rotation",
-            excess0,
         )
     if not lo - bin_hz <= f_fit <= hi + bin_hz:
         f_fit = f0
@@ -396,7 +394,7 @@ def estimate_speed(
     )
 
 
-def _not_found(spec: Spectrum, why: str, excess0: float) -> SpeedEstimate:
+def _not_found(spec: Spectrum, why: str) -> SpeedEstimate:
     return SpeedEstimate(
         speed_hz=0.0,
         confidence=0.0,

@@ -438,3 +438,24 @@ def test_pipeline_order_tracks_a_ramping_capture():
     assert not steady.speed.tracked
     # the tracked 1X order level matches the steady capture's (velocity, same r.m.s. acceleration)
     assert a.speed.order_levels.as_dict()[1.0] == pytest.approx(steady.speed.order_levels.as_dict()[1.0], rel=0.03)
+
+
+def test_pipeline_flags_analysis_lines_too_coarse_for_2x_vs_2lf():
+    # REFERENCES §6: 2-pole 60 Hz motor at 3580 r/min, 2X 0.67 Hz below 2×LF.
+    # A 4 s capture (0.25 Hz lines) separates them, but the analysis spectrum
+    # of 2 s segments (0.5 Hz lines, about 3 averages) does not: say so, and
+    # what analysis.lines would (2/0.667 Hz = 3.0 s -> 3.0 × 4096/2 = 6144 lines).
+    from agent.config import parse_config
+    from agent.model import Capture
+    from agent.pipeline import analyse_capture
+
+    cfg = parse_config({"machine": {"speed_rpm": [3000.0, 3600.0], "line_hz": 60.0, "poles": 2},
+                        "source": {"fs_hz": 4096.0, "capture_s": 4.0}})
+    x = _motor_signal(3580 / 60, fs=4096.0, duration_s=4.0)
+    a = analyse_capture(Capture(accel_ms2=x, fs_hz=4096.0), cfg)
+    sp = a.speed.speed
+    assert sp.found and sp.rpm == pytest.approx(3580.0, rel=0.002)
+    assert a.plan.bin_width_hz == 0.5
+    assert sp.resolution_flag and sp.required_capture_s == pytest.approx(3.0, rel=0.01)
+    assert any("analysis.lines >= 61" in n for n in sp.notes)
+    assert sp.slip == pytest.approx(20 / 3600, abs=0.0005)
