@@ -25,6 +25,7 @@ from typing import Any
 from agent.config import AgentConfig
 from agent.model import Capture, Finding, MachineState
 from agent.pipeline import Analysis, analyse_capture, analysis_to_json
+from agent.speed import SpeedEstimate
 
 SCHEMA = 1
 
@@ -152,7 +153,12 @@ def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConf
         raise ValueError("monitor_step needs at least one capture")
     cap = captures[0]
     t = cap.t0_utc_s
-    analysis = analyse_capture(cap, cfg)
+    previous = None
+    if ms.last_speed_hz:
+        previous = SpeedEstimate(speed_hz=ms.last_speed_hz, confidence=1.0, found=True)
+    analysis = analyse_capture(cap, cfg, previous_speed=previous)
+    speed = analysis.speed.speed if analysis.speed is not None else None
+    speed_hz = speed.speed_hz if speed is not None and speed.found else None
     new_state, reason = _machine_state_from_zone(analysis.overall.iso_zone)
     if ms.mode == "maintenance" and new_state in (MachineState.ALERT, MachineState.DANGER):
         reason = f"maintenance mode: alarms held ({reason})"
@@ -183,11 +189,14 @@ def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConf
         findings=findings,
         features=_features(analysis),
         events=tuple(events),
-        speed_hz=None,
-        analysis_doc={k: v for k, v in analysis_to_json(analysis, cfg).items() if k in ("spectrum", "overall", "peaks")},
+        speed_hz=speed_hz,
+        analysis_doc={
+            k: v for k, v in analysis_to_json(analysis, cfg).items() if k in ("spectrum", "overall", "peaks", "speed")
+        },
     )
     new_ms = dataclasses.replace(
-        ms, state=new_state, since_utc_s=since, reason=reason, n_captures=ms.n_captures + 1, finding_codes=codes
+        ms, state=new_state, since_utc_s=since, reason=reason, n_captures=ms.n_captures + 1, finding_codes=codes,
+        last_speed_hz=speed_hz,
     )
     return result, new_ms
 

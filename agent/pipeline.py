@@ -100,6 +100,7 @@ def analyse_capture(
         vel_floor=floor,
         peaks=peaks,
         fmax_hz=fmax,
+        extras={"speed_hz": sv.speed.speed_hz} if sv.speed.found else {},
         speed=sv,
     )
 

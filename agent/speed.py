@@ -9,9 +9,10 @@ peaks rather than on raw lines):
 1. Peaks are picked from the spectrum with :func:`agent.spectra.find_peaks`
    against the running-median floor of :func:`agent.spectra.noise_floor`.
    Each peak's *evidence* is its height above the floor minus the height
-   that noise alone exceeds with probability 10⁻³ (averaged periodogram
-   lines are Gamma-distributed with shape = number of averages), capped at
-   30 dB so one huge peak cannot outvote a whole family.
+   that noise alone exceeds with probability 10⁻³ per line
+   (:func:`agent.spectra.noise_threshold_db`: averaged periodogram lines are
+   χ² with 2K degrees of freedom), capped at 30 dB so one huge peak cannot
+   outvote a whole family.
 2. Peaks on the line-frequency family (1…4 × ``line_hz``, within about two
    lines) are set aside: they are electrical, not mechanical, and would
    otherwise pose as 1X/2X of a 4-pole or 2-pole motor. A machine turning at
@@ -58,7 +59,15 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
-from agent.spectra import Spectrum, SpectrumPlan, accel_spectrum, find_peaks, noise_floor, tone_at
+from agent.spectra import (
+    Spectrum,
+    SpectrumPlan,
+    accel_spectrum,
+    find_peaks,
+    noise_floor,
+    noise_threshold_db,
+    tone_at,
+)
 
 #: evidence cap per tone, dB above the noise-only level
 _CAP_DB = 30.0
@@ -121,19 +130,6 @@ def synchronous_speed_hz(line_hz: float, poles: int) -> float:
     if not line_hz > 0:
         raise ValueError(f"line_hz must be > 0, got {line_hz!r}")
     return 2.0 * line_hz / poles
-
-
-def noise_excess_db(n_averages: int, p_false: float = 1e-3) -> float:
-    """Height above the median floor that pure noise exceeds with ``p_false``.
-
-    An averaged periodogram line of Gaussian noise is Gamma distributed with
-    shape K = number of averages (χ² with 2K degrees of freedom, scaled); the
-    floor of :func:`noise_floor` is a running median, so the level is the
-    ratio of the Gamma (1 − p) quantile to its median.
-    """
-    k = max(1, int(n_averages))
-    q = stats.gamma.ppf(1.0 - p_false, k) / stats.gamma.median(k)
-    return float(10.0 * np.log10(q))
 
 
 def _truncate(spec: Spectrum, fmax_hz: float) -> Spectrum:
@@ -260,8 +256,8 @@ def estimate_speed(
     top_hz = min(spec.fmax_hz, hi * orders.max() * 1.05 + 4 * bin_hz)
     sub = _truncate(spec, top_hz)
     floor = noise_floor(sub)
-    excess0 = noise_excess_db(spec.n_averages)
-    peaks = find_peaks(sub, floor, min_height_db=excess0, fmin_hz=0.5 * lo)
+    excess0 = noise_threshold_db(spec.n_averages, 1e-3)
+    peaks = find_peaks(sub, floor, min_height_db=excess0, fmin_hz=0.5 * lo, false_alarm_per_line=None)
     notes: list[str] = []
     line_tol_hz = 1.0 * bin_hz + 0.03
     kept = []
@@ -270,7 +266,7 @@ def estimate_speed(
             continue
         kept.append(p)
     if not kept:
-        return _not_found(spec, "no peaks above the noise outside the line-frequency family")
+        return _not_found(spec, "no credible rotation: no peaks above the noise outside the line-frequency family")
     kept.sort(key=lambda p: p.freq_hz)
     pk_f = np.array([p.freq_hz for p in kept] + [np.inf])
     pk_ev = np.array([min(p.height_db - excess0, _CAP_DB) for p in kept] + [0.0])

@@ -459,3 +459,19 @@ def test_pipeline_flags_analysis_lines_too_coarse_for_2x_vs_2lf():
     assert sp.resolution_flag and sp.required_capture_s == pytest.approx(3.0, rel=0.01)
     assert any("analysis.lines >= 61" in n for n in sp.notes)
     assert sp.slip == pytest.approx(20 / 3600, abs=0.0005)
+
+
+def test_monitor_tracks_speed_across_captures():
+    from agent.config import parse_config
+    from agent.model import Capture
+    from agent.monitor import initial_state, monitor_step
+
+    cfg = parse_config({"machine": {"speed_rpm": [600.0, 3600.0], "line_hz": 60.0, "poles": 4},
+                        "source": {"fs_hz": 5120.0, "capture_s": 4.0}})
+    ms = initial_state(cfg)
+    for i in range(2):
+        cap = Capture(accel_ms2=_motor_signal(29.3, seed=10 + i), fs_hz=5120.0, seq=i, t0_utc_s=60.0 * i)
+        res, ms = monitor_step(ms, (cap,), cfg)
+        assert res.speed_hz == pytest.approx(29.3, rel=0.002)
+        assert ms.last_speed_hz == res.speed_hz
+        assert ("tracked" in res.analysis_doc["speed"]["method"]) is (i == 1)
