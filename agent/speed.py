@@ -202,6 +202,15 @@ def _match(
     return idx, close
 
 
+def _nearest(cand: np.ndarray, f: float) -> int:
+    return int(np.argmin(np.abs(cand - f)))
+
+
+def _inside(prior: np.ndarray, i: int) -> bool:
+    """Is candidate ``i`` inside the line-fed slip window (prior factor not halved)?"""
+    return bool(prior[i] >= 0.75 * prior.max())
+
+
 def _family_evidence(f0, orders, pk_f, pk_ev, tol_abs, tol_rel) -> np.ndarray:
     idx, close = _match(np.array([f0]), np.asarray(orders, dtype=float), pk_f, tol_abs, tol_rel)
     return pk_ev[idx[0]] * close[0]
@@ -299,6 +308,7 @@ def estimate_speed(
         prior = prior * (1.0 + 0.25 * np.exp(-0.5 * ((cand - previous.speed_hz) / sigma) ** 2))
     total = score * prior
     best = int(np.argmax(total))
+    in_window = prior.copy() if sync_hz is not None else None
     if score[best] < min_score_db:
         return _not_found(
             spec,
@@ -316,8 +326,10 @@ def estimate_speed(
         ev = _family_evidence(f_sub, hs, pk_f, pk_ev, tol_abs, tol_rel)
         on = ev[hs % m == 0].sum()
         off = ev[hs % m != 0].sum()
+        if in_window is not None and _inside(in_window, best) and not _inside(in_window, _nearest(cand, f_sub)):
+            continue  # a line-fed motor cannot turn at f/m: keep the speed the slip window allows
         if ev[0] >= 6.0 and off >= 0.6 * on:
-            best = int(np.argmin(np.abs(cand - f_sub)))
+            best = _nearest(cand, f_sub)
             notes.append(f"{m}X family found at {f_sub * m * 60:.0f} r/min; shaft speed taken as its 1/{m}")
             break
     f0 = float(cand[best])

@@ -120,6 +120,17 @@ def test_weak_1x_under_vane_pass_family(vanes):
     assert abs(est.speed_hz - f0) / f0 <= 0.002
 
 
+def test_half_order_family_does_not_halve_a_line_fed_2_pole_motor():
+    # looseness puts 0.5X, 1.5X, 2.5X ... beside the harmonics (common
+    # practice); a 2-pole 60 Hz motor cannot turn at half its slip-window
+    # speed, so the sub-multiple (octave) check must not move it there
+    f0 = 59.4
+    half = [((k + 0.5) * f0, 0.4, 0.3 * k) for k in range(0, 6)]
+    x = _motor_signal(f0, extra=half)
+    est = estimate_speed(speed_spectrum(x, 5120.0), speed_range_hz=(10.0, 61.0), line_hz=60.0, poles=2)
+    assert est.speed_hz == pytest.approx(f0, rel=0.002)
+
+
 def test_slip_of_4_pole_50hz_motor():
     # REFERENCES §6 worked numbers: 4-pole, 50 Hz, 1470 r/min: n_s = 1500 r/min, s = 0.02
     assert synchronous_speed_hz(50.0, 4) * 60 == pytest.approx(1500.0)
