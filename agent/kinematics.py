@@ -404,7 +404,8 @@ def train_from_config(machine) -> MachineTrain:
     ``vanes``, ``blades`` and the motor (``poles``, ``line_hz``,
     ``rotor_bars``, ``drive``); ``shafts`` add further shafts, linked by
     ``couplings``, ``belts`` and ``gears``; each bearing sits on its
-    ``shaft`` ('' = the reference shaft). Raises ValueError naming the
+    ``shaft`` ('' = the reference shaft) with multipliers from its geometry,
+    or from ``bpfo``/``bpfi``/``bsf``/``ftf`` where those are given (> 0). Raises ValueError naming the
     problem when the train is inconsistent.
     """
     ref = machine.reference_shaft or "motor"
@@ -420,6 +421,11 @@ def train_from_config(machine) -> MachineTrain:
         if shaft not in names:
             raise ValueError(f"bearing {b.name!r} sits on unknown shaft {shaft!r}; shafts are {names}")
         orders = bearing_orders(b.balls, b.ball_diameter_mm, b.pitch_diameter_mm, b.contact_angle_deg)
+        # multipliers given directly (a bearing maker's table) replace the geometry's
+        given = {k: float(getattr(b, k, 0.0) or 0.0) for k in ("ftf", "bsf", "bpfo", "bpfi")}
+        if any(v > 0 for v in given.values()):
+            merged = {k: (v if v > 0 else getattr(orders, k)) for k, v in given.items()}
+            orders = bearing_orders_given(**merged)
         bearings.setdefault(shaft, []).append(BearingSpec(b.name, orders))
     shafts = [Shaft(ref, vanes=ref_vanes, blades=ref_blades, bearings=tuple(bearings.get(ref, ())))]
     for n, s in extra.items():

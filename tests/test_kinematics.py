@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import math
 
 import pytest
@@ -180,3 +181,17 @@ def test_bad_machine_config_is_reported(machine, msg):
 def test_vfd_allows_any_range():
     cfg = _cfg({"speed_rpm": [600.0, 1000.0], "line_hz": 50.0, "poles": 2, "drive": "vfd"})
     assert cfg.machine.drive == "vfd"
+
+
+def test_given_bearing_multipliers_replace_the_geometry():
+    from types import SimpleNamespace
+
+    from agent.kinematics import train_from_config
+
+    # a bearing row with the maker's multipliers (CWRU 6205 published values,
+    # Smith & Randall 2015 Table 2) on made-up geometry: the given ones win
+    b = SimpleNamespace(name="DE", balls=8, ball_diameter_mm=10.0, pitch_diameter_mm=50.0, contact_angle_deg=0.0,
+                        shaft="", bpfo=3.5848, bpfi=5.4152, bsf=2.357, ftf=0.3983)
+    train = train_from_config(dataclasses.replace(_cfg({}).machine, bearings=(b,)))
+    o = train.shafts[0].bearings[0].orders
+    assert (o.bpfo, o.bpfi, o.bsf, o.ftf) == (3.5848, 5.4152, 2.357, 0.3983)
