@@ -71,7 +71,9 @@ def _motor_signal(f0, fs=5120.0, duration_s=4.0, *, line_hz=60.0, x1=1.0, noise_
     ],
 )
 def test_speed_within_02_percent_with_noise_harmonics_and_line_family(f0, poles):
-    x = _motor_signal(f0)
+    # broadband noise of 3× the 1X r.m.s. (1X line still ~30 dB up at 0.25 Hz
+    # lines); measured here: worst error 0.03 % over 10 seeds, confidence >= 0.8
+    x = _motor_signal(f0, noise_rms=3.0)
     est = estimate_speed(speed_spectrum(x, 5120.0), speed_range_hz=(10.0, 60.0), line_hz=60.0, poles=poles)
     assert est.found
     assert abs(est.speed_hz - f0) / f0 <= 0.002  # issue 3 check: within 0.2 %
@@ -113,7 +115,7 @@ def test_weak_1x_under_vane_pass_family(vanes):
     f0 = 24.6
     vpf = vanes * f0
     comps = [(f0, 0.1, 0.0), (vpf, 1.0, 0.3), (2 * vpf, 0.5, 1.1), (3 * vpf, 0.25, 2.0), (120.0, 0.8, 0.0)]
-    x = tones(5120.0, 4.0, comps, noise_rms=0.02, seed=vanes)
+    x = tones(5120.0, 4.0, comps, noise_rms=0.3, seed=vanes)  # noise 3× the 1X r.m.s.
     spec = speed_spectrum(x, 5120.0)
     est = estimate_speed(spec, speed_range_hz=(10.0, 60.0), line_hz=60.0, forcing_orders=(vanes,))
     assert est.found
