@@ -488,3 +488,21 @@ def test_monitor_tracks_speed_across_captures():
         assert res.speed_hz == pytest.approx(29.3, rel=0.002)
         assert ms.last_speed_hz == res.speed_hz
         assert ("tracked" in res.analysis_doc["speed"]["method"]) is (i == 1)
+
+
+def test_analyze_says_not_found_when_nothing_turns(tmp_path):
+    import json
+
+    from agent.recordings import write_wav_with_sidecar
+
+    fs = 25600.0
+    x = np.random.default_rng(11).normal(0, 0.05, 65536) + tones(fs, 65536 / fs, [(100.0, 0.3, 0.0)])  # 2×LF hum
+    p = tmp_path / "stopped.wav"
+    write_wav_with_sidecar(p, x, fs, {"channel": "pump DE"})
+    root = Path(__file__).resolve().parents[1]
+    res = _run_cli("analyze", p, "-c", root / "config/demo-skid.toml", "--json", "--orders")
+    doc = json.loads(res.stdout)
+    assert doc["speed"]["found"] is False and doc["speed"]["rpm"] == 0.0
+    assert "no credible rotation" in doc["speed"]["notes"][0]
+    assert doc["orders"] is None
+    assert all(pk["family"] in ("", "line") for pk in doc["peaks"])
