@@ -42,6 +42,8 @@ from agent.model import Capture, MachineState
 from agent.monitor import CaptureResult, MonitorState, initial_state, monitor_step, source_problem_step
 
 QUEUE_CAPTURES = 2
+BEAT_SLICE_S = 1.0   # longest single wait of the acquisition loop (heartbeat period)
+BEAT_SLACK_S = 5.0   # scheduling slack before a silent acquisition counts as hung
 BAD_STATES = (MachineState.ALERT, MachineState.DANGER)
 
 
@@ -111,6 +113,32 @@ class Acquisition(threading.Thread):
         self.source_factory, self.mono, self.wall = source_factory, mono, wall
         self.stop_event = threading.Event()
         self.ended = threading.Event()
+        self.read_timeout_s = max(2.0 * cfg.source.capture_s + 5.0, 10.0)
+        #: monotonic time the loop last came back from a read or a wait slice
+        self.beat_mono = mono()
+
+    def is_hung(self, now_mono_s: float) -> bool:
+        """True when the thread died of a bug or has not come back from a read in time.
+
+        Every wait is sliced (at most ``BEAT_SLICE_S``), so the only long
+        silence allowed is one read, which the source bounds by ``read_timeout_s``.
+        """
+        if self.ended.is_set():
+            return False
+        if not self.is_alive():
+            return self.ident is not None  # started, then ended without `ended`: a bug
+        return now_mono_s - self.beat_mono > self.read_timeout_s + BEAT_SLICE_S + BEAT_SLACK_S
+
+    def _wait(self, wait_s: float) -> bool:
+        """``stop_event.wait`` in slices that keep the heartbeat fresh; True if stopped."""
+        left_s = max(0.0, wait_s)
+        while left_s > 0:
+            step_s = min(left_s, BEAT_SLICE_S)
+            if self.stop_event.wait(step_s):
+                return True
+            left_s -= step_s
+            self.beat_mono = self.mono()
+        return self.stop_event.is_set()
 
     def _put(self, item) -> None:
         try:
@@ -126,8 +154,9 @@ class Acquisition(threading.Thread):
         backoff_s = 0.5
         next_t = self.mono()
         interval = self.cfg.source.interval_s
-        timeout_s = max(2.0 * self.cfg.source.capture_s + 5.0, 10.0)
+        timeout_s = self.read_timeout_s
         while not self.stop_event.is_set():
+            self.beat_mono = self.mono()
             try:
                 if src is None:
                     src = self.source_factory(self.cfg)
@@ -147,7 +176,7 @@ class Acquisition(threading.Thread):
                 if src is not None:
                     src.close()
                     src = None
-                if self.stop_event.wait(backoff_s):
+                if self._wait(backoff_s):
                     break
                 backoff_s = min(backoff_s * 2, 60.0)
                 continue
@@ -155,7 +184,7 @@ class Acquisition(threading.Thread):
             now = self.mono()
             if next_t < now:  # we are late (slow source): do not try to catch up in a burst
                 next_t = now
-            if self.stop_event.wait(max(0.0, next_t - now)):
+            if self._wait(next_t - now):
                 break
         if src is not None:
             src.close()
@@ -477,7 +506,10 @@ class Daemon:
                 try:
                     item = self.queue.get(timeout=min(1.0, gate.max_wait_s))
                 except queue.Empty:
-                    gate.progress()  # the loop is alive and waiting for the next capture
+                    # waiting for the next capture is progress only while acquisition
+                    # is not hung (or dead); otherwise the pings stop and systemd restarts us
+                    if self.acq is None or not self.acq.is_hung(self.mono()):
+                        gate.progress()
                     gate.maybe_ping(self.mono())
                     self._publish_health(self.mono())
                     continue

@@ -54,12 +54,16 @@ class Receiver:
         self.sock.bind(bind_to)
         self.messages: list[tuple[float, int, dict[str, str]]] = []
 
-    def drain(self, wait_s: float = 0.2) -> list[tuple[float, int, dict[str, str]]]:
-        """Collect datagrams until none arrives for ``wait_s``; return the new ones."""
+    def drain(self, wait_s: float = 0.2, max_s: float = 10.0) -> list[tuple[float, int, dict[str, str]]]:
+        """Collect datagrams until none arrives for ``wait_s`` or ``max_s`` have passed."""
         new = []
         creds_size = struct.calcsize("3i")  # struct ucred: pid, uid, gid (unix(7))
-        self.sock.settimeout(wait_s)
+        end_s = time.monotonic() + max_s
         while True:
+            left_s = end_s - time.monotonic()
+            if left_s <= 0:
+                break
+            self.sock.settimeout(min(wait_s, left_s))
             try:
                 data, ancdata, _flags, _addr = self.sock.recvmsg(4096, socket.CMSG_SPACE(creds_size))
             except (TimeoutError, socket.timeout):
@@ -314,7 +318,7 @@ def test_daemon_like_process_end_to_end(receiver):
         while not any(m[2].get("STATUS") == "stuck" for m in msgs):
             assert time.monotonic() < deadline, "child never reported being stuck"
             msgs += receiver.drain(0.05)
-        msgs += receiver.drain(1.2)  # > 2 intervals of a stuck loop
+        msgs += receiver.drain(1.2, max_s=1.2)  # > 2 intervals of a stuck loop
         child.send_signal(signal.SIGTERM)
         out, _ = child.communicate(timeout=20)
         assert child.returncode == 0
@@ -532,3 +536,119 @@ def test_install_rejects_bad_options(tmp_path):
         ["bash", str(INSTALL), "--frobnicate"], capture_output=True, text=True, timeout=60
     )
     assert res.returncode != 0 and "--frobnicate" in res.stderr
+
+
+# --------------------------------------------------------------------------- the daemon's watchdog feed
+
+
+class _ControlledSource:
+    """A source whose reads follow a script: a capture, a hang until released, or a bug."""
+
+    kind = "controlled"
+
+    def __init__(self, cfg, script):
+        self.cfg, self.script = cfg, list(script)
+        self.in_read = threading.Event()
+        self.release = threading.Event()
+
+    def open(self):
+        pass
+
+    def close(self):
+        pass
+
+    def describe(self):
+        return {"kind": self.kind}
+
+    def read(self, timeout_s):
+        from agent.demo import demo_signal
+        from agent.errors import SourceStalled
+        from agent.model import Capture
+
+        step = self.script.pop(0) if self.script else "hang"
+        if step == "hang":  # a driver that never returns (until the test lets go)
+            self.in_read.set()
+            self.release.wait(60)
+            raise SourceStalled("released by the test")
+        if step == "bug":
+            raise RuntimeError("a bug in the source")
+        fs_hz, n = self.cfg.source.fs_hz, self.cfg.source.n_samples
+        return (Capture(demo_signal(fs_hz, n, seed=1), fs_hz, t0_utc_s=1.8e9, channel="pump DE",
+                        source_id="controlled", seq=1),)
+
+
+def _daemon_config(tmp_path):
+    from agent.config import load_config
+
+    text = (ROOT / "config/demo-skid.toml").read_text()
+    text = re.sub(r'(?m)^state_dir = ".*"', f'state_dir = "{tmp_path / "state"}"', text)
+    text = re.sub(r"(?m)^interval_s = .*", "interval_s = 2.56", text)
+    path = tmp_path / "agent.toml"
+    path.write_text(text)
+    return load_config(path)
+
+
+def test_acquisition_counts_as_hung_only_after_a_read_overruns_its_timeout(tmp_path):
+    import queue
+
+    from agent.daemon import BEAT_SLACK_S, BEAT_SLICE_S, Acquisition, Health
+
+    cfg = _daemon_config(tmp_path)
+    src = _ControlledSource(cfg, ["hang"])
+    clock = [1000.0]
+    acq = Acquisition(cfg, queue.Queue(2), Health(started_mono_s=0.0),
+                      source_factory=lambda c: src, mono=lambda: clock[0])
+    assert not acq.is_hung(clock[0])  # not started yet
+    acq.start()
+    try:
+        assert src.in_read.wait(10)
+        limit_s = acq.read_timeout_s + BEAT_SLICE_S + BEAT_SLACK_S
+        assert acq.beat_mono == 1000.0
+        assert not acq.is_hung(1000.0 + limit_s - 0.01)
+        assert acq.is_hung(1000.0 + limit_s + 0.01)  # stuck in read past its own timeout
+        clock[0] = 2000.0
+        src.release.set()  # the read returns (as SourceStalled): the loop is alive again
+        deadline = time.monotonic() + 10
+        while acq.beat_mono != 2000.0:
+            assert time.monotonic() < deadline
+            time.sleep(0.01)
+        assert not acq.is_hung(2000.0)
+    finally:
+        acq.stop_event.set()
+        src.release.set()
+        acq.join(10)
+    assert acq.ended.is_set() and not acq.is_hung(1e9)  # a clean stop is not a hang
+
+
+@pytest.mark.filterwarnings("ignore::pytest.PytestUnhandledThreadExceptionWarning")
+def test_daemon_stops_feeding_the_watchdog_when_acquisition_dies(tmp_path, monkeypatch):
+    from agent.daemon import Daemon
+
+    cfg = _daemon_config(tmp_path)
+    src = _ControlledSource(cfg, ["capture", "bug"])
+    address = str(tmp_path / "notify.sock")
+    rx = Receiver(address)
+    monkeypatch.setenv("NOTIFY_SOCKET", address)
+    monkeypatch.setenv("WATCHDOG_USEC", "200000")  # interval 0.1 s
+    monkeypatch.delenv("WATCHDOG_PID", raising=False)
+    d = Daemon(cfg, source_factory=lambda c: src, use_mqtt=False)
+    runner = threading.Thread(target=d.run, name="daemon-under-test")
+    runner.start()
+    try:
+        msgs = []
+        deadline = time.monotonic() + 30
+        while getattr(d, "acq", None) is None or d.acq.is_alive():
+            assert time.monotonic() < deadline, "acquisition never hit the scripted bug"
+            msgs += rx.drain(0.05)
+        msgs += rx.drain(0.3)  # whatever was in flight when it died
+        alive_pings = len(_keys(msgs, "WATCHDOG"))
+        after = rx.drain(1.0, max_s=1.0)  # 10 intervals with a dead acquisition
+    finally:
+        d.stop_event.set()
+        runner.join(30)
+        rx.close()
+    assert not runner.is_alive()
+    assert [m[2] for m in msgs][0] == {"READY": "1", "STATUS": "starting: waiting for the first capture"}
+    assert alive_pings >= 3  # fed while analysing and waiting (~2.6 s at 0.1 s)
+    assert _keys(after, "WATCHDOG") == []  # the main loop idles, but no keep-alive
+    assert d.health.captures_done == 1
