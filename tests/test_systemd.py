@@ -652,3 +652,57 @@ def test_daemon_stops_feeding_the_watchdog_when_acquisition_dies(tmp_path, monke
     assert alive_pings >= 3  # fed while analysing and waiting (~2.6 s at 0.1 s)
     assert _keys(after, "WATCHDOG") == []  # the main loop idles, but no keep-alive
     assert d.health.captures_done == 1
+
+
+# --------------------------------------------------------------------------- `skidvib run` as systemd runs it
+
+
+def test_run_with_an_invalid_config_exits_2_which_the_unit_does_not_restart(tmp_path):
+    bad = tmp_path / "skidvib.toml"
+    bad.write_text((ROOT / "config/template.toml").read_text() + "\n[asset.nonsense]\n")
+    res = subprocess.run([sys.executable, "-m", "agent", "run", "-c", str(bad)],
+                         capture_output=True, text=True, timeout=60, cwd=ROOT)
+    assert res.returncode == 2, res.stderr  # RestartPreventExitStatus=2 in the unit
+    assert "nonsense" in res.stderr  # the journal names the problem
+    unit_values = dict(_directives(UNIT.read_text()))
+    assert unit_values["RestartPreventExitStatus"] == str(res.returncode)
+
+
+def test_run_process_speaks_the_notify_protocol(tmp_path):
+    from agent.sources import SOURCES
+
+    if "synthetic" not in SOURCES:
+        pytest.skip("the synthetic source is not registered yet")
+    text = (ROOT / "config/demo-skid.toml").read_text()
+    text = re.sub(r'(?m)^state_dir = ".*"', 'state_dir = "state"', text)
+    text = text.replace('scenario = "../replay/scenarios/demo.toml"',
+                        f'scenario = "{ROOT / "replay/scenarios/demo.toml"}"')
+    text = re.sub(r"(?m)^interval_s = .*", "interval_s = 3.0", text)
+    config = tmp_path / "skidvib.toml"
+    config.write_text(text)
+    rx = Receiver(str(tmp_path / "notify.sock"))
+    env = dict(os.environ, NOTIFY_SOCKET=rx.address, WATCHDOG_USEC="2000000")
+    env.pop("WATCHDOG_PID", None)
+    p = subprocess.Popen([sys.executable, "-m", "agent", "run", "-c", str(config), "--no-mqtt"],
+                         env=env, cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    try:
+        msgs = []
+        deadline = time.monotonic() + 60
+        while not any("WATCHDOG" in m[2] for m in msgs) or not any(
+            "STATUS" in m[2] and "READY" not in m[2] for m in msgs
+        ):
+            assert p.poll() is None, p.stderr.read()[-2000:]
+            assert time.monotonic() < deadline, "no keep-alive or status from skidvib run"
+            msgs += rx.drain(0.1, max_s=1.0)
+        p.send_signal(signal.SIGTERM)
+        rc = p.wait(30)
+        msgs += rx.drain(0.2)
+    finally:
+        if p.poll() is None:
+            p.kill()
+            p.wait()
+        rx.close()
+    assert rc == 0
+    assert all(pid == p.pid for _, pid, _ in msgs)  # NotifyAccess=main
+    assert "READY" in msgs[0][2] and len(_keys(msgs, "READY")) == 1
+    assert msgs[-1][2].get("STOPPING") == "1"
