@@ -79,6 +79,24 @@ def cmd_run(args) -> int:
     return run_daemon(args.config, max_captures=args.max_captures, no_mqtt=args.no_mqtt)
 
 
+def cmd_trend(args) -> int:
+    import time
+
+    from agent.config import resolve_path
+    from agent.trend import parse_since, read_trend, trend_html, trend_table
+
+    cfg = _load_cfg(args.config)
+    state_dir = resolve_path(cfg, cfg.store.state_dir)
+    points = read_trend(state_dir, parse_since(args.since, time.time()))
+    features = args.feature or ["vel_rms_mm_s", "acc_rms_g", "crest_factor", "kurtosis"]
+    if args.html:
+        Path(args.html).write_text(trend_html(points, features, cfg), encoding="utf-8")
+        print(f"trend plot written to {args.html} ({len(points)} rows)")
+    else:
+        print(trend_table(points, features))
+    return EXIT_OK
+
+
 def cmd_demo(args) -> int:
     from agent.demo import run_demo
 
@@ -120,6 +138,13 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--fs", type=float, help="sample rate in Hz, when the file does not say")
     s.add_argument("--units", choices=("g", "m/s2", "mm/s", "V"), help="units of the samples")
     s.set_defaults(func=cmd_report)
+
+    s = sub.add_parser("trend", help="print or plot the trend history of the state directory")
+    s.add_argument("-c", "--config", required=True, help="config file (gives store.state_dir)")
+    s.add_argument("--feature", action="append", help="feature to show (repeatable), e.g. vel_rms_mm_s")
+    s.add_argument("--since", help="7d, 12h, 30m or an ISO date/time (UTC)")
+    s.add_argument("--html", help="write a plot to this HTML file instead of printing")
+    s.set_defaults(func=cmd_trend)
 
     s = sub.add_parser("demo", help="run the invented demo skid on the simulator (no hardware)")
     s.add_argument("-o", "--out", default="demo-out", help="folder for the demo's outputs")

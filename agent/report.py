@@ -228,23 +228,15 @@ def write_report(target: str | Path, cfg: AgentConfig, out: str | Path, **read_a
 
 def _trend_near(snapshot_dir: Path, cfg: AgentConfig):
     """Trend rows from the state directory holding this snapshot, if there is one."""
-    db = snapshot_dir.parent.parent / "trend.sqlite"
-    if not db.is_file():
-        return None
-    import sqlite3
+    from agent.errors import InputError
+    from agent.trend import read_trend
 
-    con = sqlite3.connect(f"file:{db}?mode=ro", uri=True)
-    try:
-        rows = con.execute("SELECT t_utc_s, state, features FROM trend ORDER BY t_utc_s").fetchall()
-    except sqlite3.Error:
+    state_dir = snapshot_dir.parent.parent
+    if not (state_dir / "trend.sqlite").is_file():
         return None
-    finally:
-        con.close()
-    out = []
-    for t, state, feats in rows:
-        try:
-            f = json.loads(feats)
-        except (TypeError, ValueError):
-            f = {}
-        out.append({"t_utc_s": t, "state": state, "vel_rms_mm_s": f.get("vel_rms_mm_s", np.nan)})
-    return out
+    try:
+        points = read_trend(state_dir)
+    except InputError:
+        return None
+    return [{"t_utc_s": p.t_utc_s, "state": p.state, "vel_rms_mm_s": p.features.get("vel_rms_mm_s", np.nan)}
+            for p in points]

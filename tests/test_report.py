@@ -129,3 +129,37 @@ def test_daemon_modules_never_import_the_plotting_library():
             "print(bad); sys.exit(1 if bad else 0)")
     res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT)
     assert res.returncode == 0, res.stdout + res.stderr
+
+
+def test_trend_command_and_report_from_a_snapshot(tmp_path):
+    import numpy as np
+
+    from agent.store import Store
+
+    state = tmp_path / "state"
+    store = Store(state)
+    t0 = 1_800_000_000.0
+    for i in range(6):
+        st = "normal" if i < 4 else "alert"
+        store.add_trend(t0 + 60 * i, st, 24.6, {"vel_rms_mm_s": 1.0 + i, "acc_rms_g": 0.1, "crest_factor": 3.0, "kurtosis": 3.1})
+    cfg_text = (ROOT / "config/demo-skid.toml").read_text().replace('state_dir = "../demo-out/state"', f'state_dir = "{state}"')
+    cfgp = tmp_path / "c.toml"
+    cfgp.write_text(cfg_text)
+    x = demo_signal(25600.0, 65536)
+    sid = store.save_snapshot(t_utc_s=t0 + 240, reason="state_change", waveform_ms2=x, fs_hz=25600.0,
+                              spectra={"f_hz": np.arange(4.0)},
+                              analysis={"state": {"state": "alert", "since_utc_s": t0 + 240, "reason": "1X up",
+                                                  "action": "plan balancing", "urgency": "within_days"},
+                                        "findings": []})
+    store.close()
+    res = subprocess.run([sys.executable, "-m", "agent", "trend", "-c", str(cfgp), "--feature", "vel_rms_mm_s"],
+                         capture_output=True, text=True, cwd=ROOT)
+    assert res.returncode == 0, res.stderr
+    rows = [ln for ln in res.stdout.splitlines()[2:] if ln.strip()]
+    assert len(rows) == 6 and rows[-1].split()[2] == "alert" and float(rows[-1].split()[-1]) == 6.0
+    out = tmp_path / "snap.html"
+    res = subprocess.run([sys.executable, "-m", "agent", "report", str(state / "snapshots" / sid), "-c", str(cfgp), "-o", str(out)],
+                         capture_output=True, text=True, cwd=ROOT)
+    assert res.returncode == 0, res.stderr
+    page = out.read_text()
+    assert "id='trend'" in page and "alert (zone C)" in page and "plan balancing" in page
