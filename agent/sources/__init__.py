@@ -11,7 +11,10 @@ import importlib
 
 from agent.sources.base import EndOfSource, Source
 
-SOURCES: dict[str, tuple[str, str]] = {}
+SOURCES: dict[str, tuple[str, str]] = {
+    "soundcard": ("agent.sources.soundcard", "SoundCardSource"),
+    "serial": ("agent.sources.serial_adc", "SerialSource"),
+}
 
 
 def source_class(kind: str) -> type[Source]:
