@@ -49,6 +49,7 @@ class SerialSource(Source):
         channel_names: tuple[str, ...] | None = None,
         source_id: str = "serial",
         fs_tolerance: float = 0.02,
+        max_frame_samples: int = 1024,
         read_chunk: int = 4096,
         clock: Callable[[], float] = time.time,
     ):
@@ -80,7 +81,10 @@ class SerialSource(Source):
         self._clock = clock
         self._ser = None
         self._seq = 0
-        self.parser = FrameParser() if mode == "binary" else TextLineParser(channels=self.channels)
+        self.parser = (
+            FrameParser(max_samples=int(max_frame_samples), channels=self.channels)
+            if mode == "binary" else TextLineParser(channels=self.channels)
+        )
         self._asm = BlockAssembler(self.n_samples, self.channels, self.fs_hz)
         self._rate = RateCheck()
         self.opens = 0

@@ -123,7 +123,9 @@ def _decode_samples(payload: bytes, sample_format: int, n: int, ch: int) -> np.n
 class FrameParser:
     """Incremental binary frame parser: ``feed(bytes) -> list[Frame]``.
 
-    Keeps a partial frame across calls. Health counters: ``frames`` good
+    Keeps a partial frame across calls. A false sync with a plausible header
+    makes the parser wait for at most one maximal frame before its CRC fails;
+    ``max_samples`` and ``channels`` (the board's known set-up) keep that short. Health counters: ``frames`` good
     frames, ``crc_errors``, ``bad_headers`` (false syncs with an implausible
     header), ``resync_bytes`` (bytes discarded while looking for a frame),
     ``gaps`` (places where the sequence counter jumped) and ``lost_frames``
@@ -132,6 +134,7 @@ class FrameParser:
 
     max_samples: int = MAX_SAMPLES
     max_channels: int = MAX_CHANNELS
+    channels: int | None = None  # when set, a header with another channel count is implausible
     frames: int = 0
     crc_errors: int = 0
     bad_headers: int = 0
@@ -188,6 +191,7 @@ class FrameParser:
                 version != FORMAT_VERSION
                 or fmt not in SAMPLE_BYTES
                 or not 1 <= ch <= self.max_channels
+                or (self.channels is not None and ch != self.channels)
                 or not 1 <= n <= self.max_samples
             ):
                 self.bad_headers += 1
