@@ -103,6 +103,12 @@ def cmd_demo(args) -> int:
     return run_demo(args.out)
 
 
+def cmd_devices(args) -> int:
+    from agent.sources.devices import cmd_devices as run
+
+    return run(args)
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="skidvib", description="Vibration monitoring agent for one machine.")
     p.add_argument("--version", action="version", version=f"skidvib {__version__}")
@@ -145,6 +151,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--since", help="7d, 12h, 30m or an ISO date/time (UTC)")
     s.add_argument("--html", help="write a plot to this HTML file instead of printing")
     s.set_defaults(func=cmd_trend)
+
+    s = sub.add_parser("devices", help="list sound devices and serial ports for the config")
+    s.set_defaults(func=cmd_devices)
 
     s = sub.add_parser("demo", help="run the invented demo skid on the simulator (no hardware)")
     s.add_argument("-o", "--out", default="demo-out", help="folder for the demo's outputs")

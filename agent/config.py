@@ -62,20 +62,28 @@ class ReplaySourceConfig:
 
 @dataclass(frozen=True, slots=True)
 class SoundcardSourceConfig:
-    device: str = _f("default", help="device name (substring) or index as text")
-    channels: int = _f(1, range=(1, 2))
+    device: str = _f("default", help="device name (substring) or index as text; see `skidvib devices`")
+    channels: int = _f(1, range=(1, 2), help="2 = both inputs of a stereo card, one capture each")
+    channel_names: tuple[str, ...] = _f(factory=tuple, help="one per channel; empty = source.channel, ch1")
     blocksize: int = _f(0, range=(0, 65536), help="0 lets PortAudio choose")
     full_scale_v: float = _f(1.0, range=(1e-3, 100.0), help="input voltage at digital full scale")
-    stall_timeout_s: float = _f(5.0, range=(0.1, 600.0))
+    stall_timeout_s: float = _f(5.0, range=(0.1, 600.0), help="no audio block for this long = stalled")
+    queue_blocks: int = _f(256, range=(4, 65536), help="audio blocks buffered between callback and reader")
 
 
 @dataclass(frozen=True, slots=True)
 class SerialSourceConfig:
     port: str = _f("", help="serial device or pyserial URL, e.g. /dev/serial/by-id/...")
     baud: int = _f(921600, range=(1200, 12_000_000))
-    mode: str = _f("binary", choices=("binary", "text"))
-    full_scale_v: float = _f(2.5, range=(1e-3, 100.0))
-    stall_timeout_s: float = _f(5.0, range=(0.1, 600.0))
+    mode: str = _f("binary", choices=("binary", "text"), help="binary frames (docs/serial-frames.md) or text lines")
+    channels: int = _f(1, range=(1, 8))
+    channel_names: tuple[str, ...] = _f(factory=tuple, help="one per channel; empty = source.channel, ch1, ...")
+    sample_format: str = _f("int16", choices=("int16", "int24"), help="binary mode: the board's sample format")
+    max_frame_samples: int = _f(1024, range=(1, 4096), help="binary mode: largest samples per channel in a frame")
+    text_full_scale_counts: float = _f(32768.0, range=(1.0, 2.0**31), help="text mode: counts at full scale")
+    dc_coupled: bool = _f(False, help="the ADC sees the IEPE bias (DC path): report it and remove the mean")
+    full_scale_v: float = _f(2.5, range=(1e-3, 100.0), help="input voltage at digital full scale")
+    stall_timeout_s: float = _f(5.0, range=(0.1, 600.0), help="no samples for this long = stalled")
 
 
 @dataclass(frozen=True, slots=True)
@@ -101,6 +109,8 @@ class SensorConfig:
     conditioner_gain: float = _f(1.0, range=(1e-3, 1000.0))
     full_scale_g: float = _f(50.0, range=(0.1, 10_000.0), help="sensor range; beyond this is overload")
     bias_v: tuple[float, float] = _f((8.0, 14.0), help="healthy IEPE bias window [low, high] volts")
+    max_rms_g: float = _f(20.0, range=(0.01, 10_000.0), help="r.m.s. above this is implausible (sensor fault)")
+    min_rms_g: float = _f(1e-4, range=(0.0, 10.0), help="r.m.s. below this is a dead channel")
 
 
 @dataclass(frozen=True, slots=True)
@@ -396,6 +406,18 @@ def _cross_checks(cfg: AgentConfig, errors: list[str]) -> None:
     edges = cfg.baseline.speed_bin_edges_rpm
     if list(edges) != sorted(set(edges)):
         errors.append(f"baseline.speed_bin_edges_rpm: {list(edges)} must be strictly increasing")
+    for sub in ("soundcard", "serial"):
+        sc = getattr(src, sub)
+        if sc.channel_names and len(sc.channel_names) != sc.channels:
+            errors.append(
+                f"source.{sub}.channel_names: {len(sc.channel_names)} names for {sc.channels} channels "
+                f"(source.{sub}.channels)"
+            )
+    blo_v, bhi_v = cfg.sensor.bias_v
+    if not 0 <= blo_v < bhi_v:
+        errors.append(f"sensor.bias_v: [{blo_v}, {bhi_v}] must be [low, high] with 0 <= low < high")
+    if cfg.sensor.min_rms_g >= cfg.sensor.max_rms_g:
+        errors.append(f"sensor.min_rms_g: {cfg.sensor.min_rms_g} must be below sensor.max_rms_g {cfg.sensor.max_rms_g}")
     if src.kind == "serial" and not src.serial.port:
         errors.append("source.serial.port: required when source.kind = 'serial'")
     if src.kind == "replay" and not src.replay.paths:

@@ -120,6 +120,25 @@ class QualityVerdict:
         return "; ".join(self.reasons)
 
 
+def limits_from_config(cfg) -> QualityLimits:
+    """Gate limits from an :class:`agent.config.AgentConfig` (``[sensor]``, ``[source]``, ``[machine]``).
+
+    The ski-slope band stays below half the lowest running speed; hardware
+    sources are held to the configured sample rate (a replay file keeps its own).
+    """
+    sen = cfg.sensor
+    lowest_speed_hz = cfg.machine.speed_rpm[0] / 60.0
+    ski_hi = max(2.0, min(5.0, 0.5 * lowest_speed_hz))
+    return QualityLimits(
+        sensor_full_scale_ms2=sen.full_scale_g * STANDARD_GRAVITY_MS2,
+        bias_v=tuple(sen.bias_v),
+        min_rms_ms2=sen.min_rms_g * STANDARD_GRAVITY_MS2,
+        max_rms_ms2=sen.max_rms_g * STANDARD_GRAVITY_MS2,
+        ski_low_band_hz=(min(1.0, ski_hi / 2.0), ski_hi),
+        nominal_fs_hz=cfg.source.fs_hz if cfg.source.kind in ("soundcard", "serial") else None,
+    )
+
+
 def _longest_run(mask: np.ndarray) -> int:
     """Length of the longest run of True in a boolean array."""
     if not mask.any():

@@ -237,3 +237,18 @@ def test_real_healthy_sensor_data_passes(capture_s):
     print(f"\nreal healthy-sensor captures of {capture_s:g} s: {total}, flagged {len(flagged)}")
     assert total > 50
     assert flagged == []
+
+
+def test_limits_from_config():
+    from agent.config import parse_config
+    from agent.quality import limits_from_config
+
+    cfg = parse_config({"source": {"kind": "serial", "fs_hz": 10000.0, "serial": {"port": "loop://"}},
+                        "sensor": {"full_scale_g": 80.0, "bias_v": [9.0, 12.0], "max_rms_g": 10.0},
+                        "machine": {"speed_rpm": [300.0, 1800.0]}})
+    lim = limits_from_config(cfg)
+    assert lim.sensor_full_scale_ms2 == pytest.approx(80 * G)
+    assert lim.bias_v == (9.0, 12.0) and lim.max_rms_ms2 == pytest.approx(10 * G)
+    assert lim.nominal_fs_hz == 10000.0
+    # lowest speed 5 Hz: the ski band stays below half of it
+    assert lim.ski_low_band_hz == (1.0, 2.5)

@@ -214,3 +214,31 @@ def test_pty_stream_with_faults_and_unplug(tmp_path):
         f"writer lost while unplugged={len(wlog['lost'])} intact-but-in-flight={len(missing_ok)} "
         f"unavailable={errors['unavailable']} stalled={errors['stalled']} opens={src.opens}"
     )
+
+
+def test_serial_from_config_and_validation():
+    from agent.config import parse_config
+    from agent.errors import ConfigError
+    from agent.sources import build_source
+
+    cfg = parse_config({
+        "source": {"kind": "serial", "fs_hz": 1000.0, "capture_s": 0.25,
+                   "serial": {"port": "loop://", "channels": 2, "sample_format": "int24",
+                              "channel_names": ["motor NDE", "motor DE"], "full_scale_v": 5.0}},
+        "sensor": {"sensitivity_mv_per_g": 10.0},
+    })
+    src = build_source(cfg)
+    assert isinstance(src, SerialSource) and src.channel_names == ("motor NDE", "motor DE")
+    # int24: 8388608 counts = 5 V; 10 mV/g → 500 g full scale
+    assert src.calibration.full_scale_ms2 == pytest.approx(500 * STANDARD_GRAVITY_MS2)
+    src.open()
+    # (loop:// holds at most 4096 bytes: keep what is written small)
+    src._ser.write(encode_frame(0, np.full((250, 2), 8388), FMT_INT24))
+    caps = src.read(1.0)
+    assert caps[0].accel_ms2[0] == pytest.approx(8388 / 8388608 * 500 * STANDARD_GRAVITY_MS2)
+    with pytest.raises(ConfigError) as err:
+        parse_config({"source": {"kind": "serial",
+                                 "serial": {"port": "x", "channels": 9, "mode": "ascii", "max_frame_samples": 0}}})
+    text = str(err.value)
+    assert "source.serial.channels" in text and "source.serial.mode" in text
+    assert "source.serial.max_frame_samples" in text

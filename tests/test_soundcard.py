@@ -303,3 +303,29 @@ def test_calibration_of_a_block_to_ms2():
     (cap,) = src._captures(*src._asm.pop())
     np.testing.assert_allclose(cap.accel_ms2, STANDARD_GRAVITY_MS2)
     assert cap.t0_utc_s == pytest.approx(5.0 - 10 / 1000)
+
+
+def test_devices_command_lists_the_pulse_device(pulse_pipe):
+    env, _ = pulse_pipe
+    res = subprocess.run([sys.executable, "-m", "agent", "devices"], env=env, cwd=ROOT,
+                         capture_output=True, text=True, timeout=60)
+    assert res.returncode == 0, res.stderr
+    assert "Sound devices with inputs" in res.stdout and "Serial ports" in res.stdout
+    assert "'pulse'" in res.stdout  # the ALSA pulse PCM, as [source.soundcard] device = "pulse"
+
+
+def test_soundcard_from_config():
+    from agent.config import parse_config
+    from agent.sources import build_source, stall_timeout_s
+
+    cfg = parse_config({
+        "source": {"kind": "soundcard", "fs_hz": 48000.0, "capture_s": 1.0, "channel": "pump DE",
+                   "soundcard": {"device": "pulse", "channels": 2, "full_scale_v": 2.0, "stall_timeout_s": 3.0}},
+        "sensor": {"sensitivity_mv_per_g": 50.0, "conditioner_gain": 2.0},
+    })
+    src = build_source(cfg)
+    assert isinstance(src, SoundCardSource)
+    assert src.device == "pulse" and src.n_samples == 48000 and src.channel_names == ("pump DE", "ch1")
+    # 2 V full scale ÷ gain 2 = 1 V at the sensor; 50 mV/g → 20 g
+    assert src.calibration.full_scale_ms2 == pytest.approx(20 * STANDARD_GRAVITY_MS2)
+    assert stall_timeout_s(cfg) == 3.0

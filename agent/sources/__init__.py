@@ -26,4 +26,20 @@ def source_class(kind: str) -> type[Source]:
     return getattr(importlib.import_module(module_name), class_name)
 
 
-__all__ = ["SOURCES", "EndOfSource", "Source", "source_class"]
+def build_source(cfg) -> Source:
+    """The configured source, not yet opened: ``source_class(kind).from_config(cfg)``.
+
+    Every registered class offers ``from_config(cfg: AgentConfig)``.
+    """
+    return source_class(cfg.source.kind).from_config(cfg)
+
+
+def stall_timeout_s(cfg) -> float:
+    """The read timeout for the configured source (hardware sources have their own key)."""
+    kind = cfg.source.kind
+    if kind in ("soundcard", "serial"):
+        return float(getattr(cfg.source, kind).stall_timeout_s)
+    return max(5.0, 2.0 * cfg.source.capture_s)
+
+
+__all__ = ["SOURCES", "EndOfSource", "Source", "build_source", "source_class", "stall_timeout_s"]

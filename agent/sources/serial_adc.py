@@ -25,7 +25,12 @@ from agent.model import Capture
 from agent.sources.assembly import BlockAssembler, RateCheck
 from agent.sources.base import Source
 from agent.sources.calibration import Calibration
-from agent.sources.serial_frames import FULL_SCALE_COUNTS, FMT_INT16, FrameParser, TextLineParser
+from agent.sources.serial_frames import FMT_INT16, FMT_INT24, FULL_SCALE_COUNTS, FrameParser, TextLineParser
+
+
+def default_channel_names(first: str, channels: int) -> tuple[str, ...]:
+    """``source.channel`` for the first input, then ch1, ch2, ..."""
+    return (first,) + tuple(f"ch{i}" for i in range(1, channels))
 
 
 class SerialSource(Source):
@@ -91,6 +96,29 @@ class SerialSource(Source):
         self.wrong_channel_frames = 0
         self.format_changes = 0
         self._sample_format: int | None = sample_format if mode == "binary" else None
+
+    @classmethod
+    def from_config(cls, cfg) -> "SerialSource":
+        """Build from an :class:`agent.config.AgentConfig` (``[source]``, ``[source.serial]``, ``[sensor]``)."""
+        src, sc, sen = cfg.source, cfg.source.serial, cfg.sensor
+        names = tuple(sc.channel_names) or default_channel_names(src.channel, sc.channels)
+        return cls(
+            sc.port,
+            fs_hz=src.fs_hz,
+            n_samples=src.n_samples,
+            channels=sc.channels,
+            baud=sc.baud,
+            mode=sc.mode,
+            sample_format=FMT_INT24 if sc.sample_format == "int24" else FMT_INT16,
+            text_full_scale_counts=sc.text_full_scale_counts,
+            full_scale_v=sc.full_scale_v,
+            sensitivity_mv_per_g=sen.sensitivity_mv_per_g,
+            conditioner_gain=sen.conditioner_gain,
+            dc_coupled=sc.dc_coupled,
+            channel_names=names,
+            source_id=f"serial:{sc.port}",
+            max_frame_samples=sc.max_frame_samples,
+        )
 
     # ── Source interface ──
     def open(self) -> None:

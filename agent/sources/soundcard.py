@@ -112,6 +112,26 @@ class SoundCardSource(Source):
             self._pending_drops += 1
             self.dropped_blocks += 1
 
+    @classmethod
+    def from_config(cls, cfg) -> "SoundCardSource":
+        """Build from an :class:`agent.config.AgentConfig` (``[source]``, ``[source.soundcard]``, ``[sensor]``)."""
+        from agent.sources.serial_adc import default_channel_names
+
+        src, sc, sen = cfg.source, cfg.source.soundcard, cfg.sensor
+        return cls(
+            sc.device,
+            fs_hz=src.fs_hz,
+            n_samples=src.n_samples,
+            channels=sc.channels,
+            blocksize=sc.blocksize,
+            full_scale_v=sc.full_scale_v,
+            sensitivity_mv_per_g=sen.sensitivity_mv_per_g,
+            conditioner_gain=sen.conditioner_gain,
+            channel_names=tuple(sc.channel_names) or default_channel_names(src.channel, sc.channels),
+            source_id=f"soundcard:{sc.device}",
+            queue_blocks=sc.queue_blocks,
+        )
+
     # ── Source interface ──
     def open(self) -> None:
         with self._lock:
