@@ -20,8 +20,9 @@ Problem codes, in the order they are reported:
   ``ski_max_low_db`` of the acceleration r.m.s. lies in ``ski_low_band_hz``
   (below the machine's running speed), which after division by 2πf
   dominates the velocity spectrum (see :func:`ski_figures`). Threshold set
-  from data: healthy CWRU and IMS captures of 1 s and 5 s stay at or below
-  −31 dB; a baseline decay of 1σ after an overload gives about −23 dB.
+  from data: healthy CWRU and IMS captures of 1–10 s stay at or below
+  −26.6 dB (CWRU 222 drive end, 2 s captures); a baseline decay of 2σ after
+  an overload gives about −17 dB, a drifting baseline −16 to −7 dB.
 * ``dropout`` — a run of exact zeros, or of one held value, longer than a
   real signal holds still.
 * ``gap`` — the source lost samples inside the capture (sequence gap,
@@ -80,7 +81,7 @@ class QualityLimits:
     max_dc_fraction: float = 0.25  # |mean| as a fraction of full scale
     ski_low_band_hz: tuple[float, float] = (1.0, 5.0)  # keep below half the lowest running speed
     ski_ref_band_hz: tuple[float, float] = (10.0, 1000.0)  # velocity reference (ISO 10-1000 Hz band)
-    ski_max_low_db: float = -25.0  # low-band share of the acceleration r.m.s. (see ski_figures)
+    ski_max_low_db: float = -20.0  # low-band share of the acceleration r.m.s. (see ski_figures)
     ski_resolution_hz: float = 0.5  # finest line spacing used for the check
     dropout_zero_run_s: float = 0.002  # a run of exact zeros this long is a dropout
     dropout_zero_run_min: int = 16  # ... and at least this many samples
