@@ -151,6 +151,9 @@ def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConf
     """Judge one capture (one per channel); return the result and the state to carry on."""
     if not captures:
         raise ValueError("monitor_step needs at least one capture")
+    failed = _quality_failures(captures, cfg)
+    if failed:
+        return quality_fault_step(ms, captures, failed)
     cap = captures[0]
     t = cap.t0_utc_s
     previous = None
@@ -199,6 +202,40 @@ def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConf
         last_speed_hz=speed_hz,
     )
     return result, new_ms
+
+
+def _quality_failures(captures: tuple[Capture, ...], cfg: AgentConfig) -> list[tuple[Capture, Any]]:
+    from agent.quality import check_capture, limits_from_config
+
+    limits = limits_from_config(cfg)
+    out = []
+    for c in captures:
+        v = check_capture(c, limits)
+        if not v.ok:
+            out.append((c, v))
+    return out
+
+
+def quality_fault_step(ms: MonitorState, captures: tuple[Capture, ...], failed: list) -> tuple[CaptureResult, MonitorState]:
+    """A capture failed the data-quality gate: a sensor fault, no machine judgement, nothing learned."""
+    cap = captures[0]
+    t = cap.t0_utc_s
+    state = MachineState.SENSOR_FAULT
+    reason = "; ".join(f"{c.channel}: {v.reason}" for c, v in failed)
+    problems = tuple(sorted({p for _, v in failed for p in v.problems}))
+    action, urgency = STATE_ACTION[state]
+    since = ms.since_utc_s if ms.state == state else t
+    events = ()
+    if ms.state != state:
+        events = ({"event": "state_change", "t_utc_s": t, "state": state.value,
+                   "previous_state": ms.state.value, "reason": reason},)
+    result = CaptureResult(
+        t_utc_s=t, seq=cap.seq, channel=cap.channel, state=state, previous_state=ms.state, since_utc_s=since,
+        reason=reason, action=action, urgency=urgency, analysis=None, quality_ok=False,
+        quality_problems=problems, events=events,
+        analysis_doc={"quality": {c.channel: dict(v.figures) for c, v in failed}},
+    )
+    return result, dataclasses.replace(ms, state=state, since_utc_s=since, reason=reason, n_captures=ms.n_captures + 1)
 
 
 def source_problem_step(ms: MonitorState, t_utc_s: float, problem: str) -> tuple[CaptureResult, MonitorState]:

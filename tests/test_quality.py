@@ -252,3 +252,22 @@ def test_limits_from_config():
     assert lim.nominal_fs_hz == 10000.0
     # lowest speed 5 Hz: the ski band stays below half of it
     assert lim.ski_low_band_hz == (1.0, 2.5)
+
+
+def test_monitor_step_turns_a_failed_capture_into_sensor_fault():
+    from agent.config import default_config
+    from agent.model import MachineState
+    from agent.monitor import initial_state, monitor_step
+
+    cfg = default_config()
+    ms = initial_state(cfg)
+    good = _cap(_healthy(), fs=cfg.source.fs_hz, t0_utc_s=100.0)
+    res, ms = monitor_step(ms, (good,), cfg)
+    assert res.state != MachineState.SENSOR_FAULT and res.quality_ok
+    bad = _cap(np.clip(_healthy(), -3.5, 3.5), fs=cfg.source.fs_hz, t0_utc_s=200.0, channel="pump DE")
+    res, ms2 = monitor_step(ms, (good, bad), cfg)
+    assert res.state == MachineState.SENSOR_FAULT and not res.quality_ok
+    assert res.quality_problems == ("clipped",) and res.reason.startswith("pump DE: clipped")
+    assert res.findings == () and res.analysis is None  # no machine judgement from bad data
+    assert ms2.last_speed_hz == ms.last_speed_hz  # nothing learned
+    assert res.events and res.events[0]["state"] == "sensor_fault"
