@@ -24,11 +24,14 @@ import math
 import types
 from collections.abc import Mapping
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from agent.model import STANDARD_GRAVITY_MS2
-from agent.spectra import Spectrum, band_rms, noise_floor
+
+if TYPE_CHECKING:  # the spectral core (scipy) is imported only when features are built
+    from agent.spectra import Spectrum
 
 AMPLITUDE = "amplitude"
 DECIBEL = "db"
@@ -168,6 +171,8 @@ def build_features(
 
     Every part is optional; a part not given adds no features.
     """
+    from agent.spectra import band_rms, noise_floor
+
     feats: dict[str, float] = {}
     if vel is not None:
         if vel.quantity != "velocity":
