@@ -5,7 +5,7 @@ Levels of a feature in an operating state with a ready baseline
 Let m be the baseline median and σ the log-scale spread (see
 :mod:`agent.baseline`). Then
 
-* **alert** = m · max(exp(k·σ), ``min_ratio_alert``) — the statistical
+* **alert** = m · max(exp(k·σ), ``min_alert_ratio``) — the statistical
   level (median + k·spread, taken on the log scale so that it is a factor on
   the median), never closer than ×1.5 to normal (so a very steady feature
   does not alarm on changes nobody would act on). For a feature of ordinary
@@ -17,13 +17,13 @@ Let m be the baseline median and σ the log-scale spread (see
   the feature is flagged ``noisy`` — also when a doubling sits less than 2σ
   above its alert level: a doubling of such a feature cannot be told from its
   normal scatter within the persistence window every time.
-* **danger** = m · max(``ratio_danger``, alert factor · ratio_danger/ratio_alert)
+* **danger** = m · max(``danger_ratio``, alert factor · danger_ratio/alert_ratio)
   (common practice ×4, +12 dB; twice the alert factor for a noisy feature).
 * Amplitude features never alarm below ``min_level_mm_s`` / ``min_level_g``
   (levels at the noise floor of the measurement mean nothing).
 
 Absolute limits: the overall velocity ``vel_rms_mm_s`` is also judged
-against ISO 20816-3 zones (:mod:`agent.iso20816`, values from memory): by
+against ISO 20816-3 zones (the table in :mod:`agent.features`, values from memory): by
 default zone C → alert, zone D → danger. They apply from the first running
 capture, also while a baseline is still being learned. The lower of the
 absolute and relative level rules.
@@ -59,13 +59,14 @@ from dataclasses import dataclass, field, replace
 from agent.baseline import Baselines, BaselineConfig, FeatureStats, from_log, learn, to_log
 from agent.errors import IncompatibleStateFile
 from agent.featureset import AMPLITUDE, FeatureVector, feature_kind
-from agent.iso20816 import SUPPORTS, GROUPS, ZONES, velocity_zone, zone_limits
+from agent.features import ISO20816_3_VELOCITY_MM_S, iso_zone
 from agent.model import MachineState
-from agent.opstate import STOPPED, OperatingState
+from agent.opstate import STOPPED, OperatingState, OpStateConfig
 
 NORMAL, ALERT, DANGER = 0, 1, 2
 LEVEL_NAMES = ("normal", "alert", "danger")
 ISO_FEATURE = "vel_rms_mm_s"
+ZONES = ("A", "B", "C", "D")
 ENGINE_FORMAT = "skidvib-alarm-engine"
 ENGINE_VERSION = 1
 
@@ -74,10 +75,10 @@ ENGINE_VERSION = 1
 class AlarmConfig:
     """Alarm settings (``[alarms]``; ISO group/support come from ``[machine]``)."""
 
-    ratio_alert: float = 2.0  # common practice, ×2 = +6 dB
-    ratio_danger: float = 4.0  # common practice, ×4 = +12 dB
-    min_ratio_alert: float = 1.5
-    k_alert: float = 4.0
+    alert_ratio: float = 2.0  # common practice, ×2 = +6 dB
+    danger_ratio: float = 4.0  # common practice, ×4 = +12 dB
+    min_alert_ratio: float = 1.5
+    k_spread: float = 4.0
     min_spread_log: float = 0.02  # floor on σ_log (2 %), for features steadier than their estimate
     min_level_mm_s: float = 0.01
     min_level_g: float = 0.001
@@ -87,7 +88,7 @@ class AlarmConfig:
     latch: bool = False
     rate_ratio: float = 1.5  # 0 switches the rate-of-change alarm off
     rate_window: int = 12
-    iso_enabled: bool = True
+    use_iso_zones: bool = True
     iso_group: int = 2
     iso_support: str = "rigid"
     iso_alert_zone: str = "C"
@@ -101,10 +102,10 @@ class AlarmConfig:
             if not ok:
                 raise ValueError(f"{name} must be a number in {'(' if lo_open else '['}{lo}, {hi}], got {v!r}")
 
-        num("min_ratio_alert", 1.0, lo_open=True)
-        num("ratio_alert", self.min_ratio_alert)
-        num("ratio_danger", self.ratio_alert, lo_open=True)
-        num("k_alert", 0.0, lo_open=True)
+        num("min_alert_ratio", 1.0, lo_open=True)
+        num("alert_ratio", self.min_alert_ratio)
+        num("danger_ratio", self.alert_ratio, lo_open=True)
+        num("k_spread", 0.0, lo_open=True)
         num("min_spread_log", 0.0)
         num("min_level_mm_s", 0.0)
         num("min_level_g", 0.0)
@@ -119,10 +120,9 @@ class AlarmConfig:
             raise ValueError(f"persistence_n ({self.persistence_n}) must be <= persistence_m ({self.persistence_m})")
         if self.rate_window < 6:
             raise ValueError(f"rate_window must be >= 6 captures, got {self.rate_window}")
-        if self.iso_group not in GROUPS:
-            raise ValueError(f"iso_group must be one of {GROUPS}, got {self.iso_group!r}")
-        if self.iso_support not in SUPPORTS:
-            raise ValueError(f"iso_support must be one of {SUPPORTS}, got {self.iso_support!r}")
+        if (self.iso_group, self.iso_support) not in ISO20816_3_VELOCITY_MM_S:
+            raise ValueError(f"no ISO 20816-3 limits for iso_group={self.iso_group!r}, "
+                             f"iso_support={self.iso_support!r}; have {sorted(ISO20816_3_VELOCITY_MM_S)}")
         if self.iso_alert_zone not in ZONES[1:] or self.iso_danger_zone not in ZONES[1:]:
             raise ValueError(f"iso zones must be one of {ZONES[1:]}, got {self.iso_alert_zone!r}, {self.iso_danger_zone!r}")
         if ZONES.index(self.iso_danger_zone) < ZONES.index(self.iso_alert_zone):
@@ -161,19 +161,19 @@ def feature_levels(name: str, stats: FeatureStats | None, cfg: AlarmConfig) -> L
     noisy = False
     if stats is not None:
         sigma = max(stats.spread_log, cfg.min_spread_log)
-        stat_factor = math.exp(cfg.k_alert * sigma)
-        a_fac = max(stat_factor, cfg.min_ratio_alert)
-        noisy = math.log(cfg.ratio_alert / a_fac) < 2.0 * sigma
-        d_fac = max(cfg.ratio_danger, a_fac * cfg.ratio_danger / cfg.ratio_alert)
+        stat_factor = math.exp(cfg.k_spread * sigma)
+        a_fac = max(stat_factor, cfg.min_alert_ratio)
+        noisy = math.log(cfg.alert_ratio / a_fac) < 2.0 * sigma
+        d_fac = max(cfg.danger_ratio, a_fac * cfg.danger_ratio / cfg.alert_ratio)
         floor = _min_level(name, cfg)
         alert = max(from_log(name, stats.median_log + math.log(a_fac)), floor)
         danger = max(from_log(name, stats.median_log + math.log(d_fac)), floor)
         a_src = f"×{a_fac:.2f} baseline"
         d_src = f"×{d_fac:g} baseline"
-    if cfg.iso_enabled and name == ISO_FEATURE:
-        lim = zone_limits(cfg.iso_group, cfg.iso_support)
-        ia = _zone_edge(cfg.iso_alert_zone, lim.vel_mm_s)
-        idg = _zone_edge(cfg.iso_danger_zone, lim.vel_mm_s)
+    if cfg.use_iso_zones and name == ISO_FEATURE:
+        edges = ISO20816_3_VELOCITY_MM_S[(cfg.iso_group, cfg.iso_support)]
+        ia = _zone_edge(cfg.iso_alert_zone, edges)
+        idg = _zone_edge(cfg.iso_danger_zone, edges)
         src = f"ISO 20816-3 group {cfg.iso_group} {cfg.iso_support}"
         if alert is None or ia < alert:
             alert, a_src = ia, f"{src} zone {cfg.iso_alert_zone}"
@@ -305,7 +305,7 @@ def _rate_exceeded(history: tuple[float, ...], stats: FeatureStats | None, cfg: 
     old = statistics.median(history[:3])
     new = statistics.median(history[-3:])
     sigma = max(stats.spread_log, cfg.min_spread_log)
-    need = max(math.log(cfg.rate_ratio), cfg.k_alert * sigma * math.sqrt(2.0))
+    need = max(math.log(cfg.rate_ratio), cfg.k_spread * sigma * math.sqrt(2.0))
     return (new - old) >= need and new > stats.median_log, math.exp(new - old)
 
 
@@ -317,11 +317,11 @@ def _update_feature(fa: FeatureAlarm, name: str, value: float, lv: Levels, stats
         history = (history + (to_log(name, value),))[-cfg.rate_window:]
     rate_hit, rate_fac = _rate_exceeded(history, stats, cfg)
     raw = NORMAL
-    if lv.alert is not None and value >= lv.alert:
+    if lv.alert is not None and value > lv.alert:
         raw = ALERT
     if rate_hit:
         raw = max(raw, ALERT)
-    if lv.danger is not None and value >= lv.danger:
+    if lv.danger is not None and value > lv.danger:
         raw = DANGER
     recent = (fa.recent + (raw,))[-cfg.persistence_m:]
     level = fa.level
@@ -331,10 +331,10 @@ def _update_feature(fa: FeatureAlarm, name: str, value: float, lv: Levels, stats
             level = s
             lim = lv.danger if s == DANGER else lv.alert
             src = lv.danger_source if s == DANGER else lv.alert_source
-            if s == ALERT and rate_hit and not (lv.alert is not None and value >= lv.alert):
+            if s == ALERT and rate_hit and not (lv.alert is not None and value > lv.alert):
                 reason = f"rising ×{rate_fac:.2f} over {cfg.rate_window} captures"
             else:
-                reason = f"{value:.4g} at or above {LEVEL_NAMES[s]} level {lim:.4g} ({src}) in " \
+                reason = f"{value:.4g} above {LEVEL_NAMES[s]} level {lim:.4g} ({src}) in " \
                          f"{sum(1 for r in recent if r >= s)} of the last {len(recent)} captures"
             break
     below = fa.below
@@ -404,7 +404,7 @@ def step(
     f_out: list[FeatureAssessment] = []
     base_status = ""
     progress = 0.0
-    iso_zone = None
+    zone = None
     worst_name = ""
 
     if not quality_ok:
@@ -420,7 +420,7 @@ def step(
         base_status = "ready" if ready else "learning"
         progress = 1.0 if ready else (0.0 if sb is None else sb.progress(bcfg))
         if fv is not None and ISO_FEATURE in fv:
-            iso_zone = velocity_zone(fv[ISO_FEATURE], zone_limits(cfg.iso_group, cfg.iso_support))
+            zone = iso_zone(fv[ISO_FEATURE], cfg.iso_group, cfg.iso_support)
         if op.usable and fv is not None:
             for name, value in fv.values.items():
                 stats = sb.stats.get(name) if ready else None
@@ -457,7 +457,7 @@ def step(
     since = engine.since_utc_s if machine == engine.machine else t_utc_s
     engine = EngineState(machine, since, feats, new_op, reason)
     return engine, baselines, Assessment(t_utc_s, machine, reason, op if quality_ok else None, base_status,
-                                         progress, iso_zone, tuple(f_out), tuple(events))
+                                         progress, zone, tuple(f_out), tuple(events))
 
 
 def acknowledge(engine: EngineState, t_utc_s: float, cfg: AlarmConfig, feature: str | None = None
@@ -497,3 +497,42 @@ def reset_alarms(engine: EngineState, t_utc_s: float, reason: str = "relearn") -
         events.append(AlarmEvent(t_utc_s, "machine", engine.machine.value, MachineState.LEARNING.value,
                                  reason=reason))
     return EngineState(MachineState.LEARNING, t_utc_s, {}, engine.op_previous, reason), tuple(events)
+
+
+def settings(cfg) -> tuple[OpStateConfig, BaselineConfig, AlarmConfig]:
+    """Operating-state, baseline and alarm settings from an :class:`agent.config.AgentConfig`."""
+    b, al, m = cfg.baseline, cfg.alarms, cfg.machine
+    op = OpStateConfig(speed_bin_edges_rpm=tuple(b.speed_bin_edges_rpm), stopped_vel_mm_s=b.stopped_vel_mm_s,
+                       min_running_rpm=b.min_running_rpm, speed_tol_frac=b.speed_tol_frac,
+                       speed_tol_rpm=b.speed_tol_rpm)
+    bc = BaselineConfig(learn_captures=b.learn_captures, learn_hours=b.learn_hours, reservoir_size=b.reservoir_size)
+    ac = AlarmConfig(alert_ratio=al.alert_ratio, danger_ratio=al.danger_ratio, min_alert_ratio=al.min_alert_ratio,
+                     k_spread=al.k_spread, min_spread_log=al.min_spread_log, min_level_mm_s=al.min_level_mm_s,
+                     min_level_g=al.min_level_g, persistence_n=al.persistence_n, persistence_m=al.persistence_m,
+                     hysteresis=al.hysteresis, latch=al.latch, rate_ratio=al.rate_ratio, rate_window=al.rate_window,
+                     use_iso_zones=al.use_iso_zones, iso_group=m.iso_group, iso_support=m.support,
+                     iso_alert_zone=al.iso_alert_zone, iso_danger_zone=al.iso_danger_zone)
+    return op, bc, ac
+
+
+def judge_analysis(engine: EngineState, baselines: Baselines, analysis, cfg, *, quality_ok: bool = True,
+                   quality_problems: tuple[str, ...] = ()) -> tuple[EngineState, Baselines, Assessment]:
+    """One :class:`agent.pipeline.Analysis` through operating state, learning and alarms (for the monitor step).
+
+    The speed comes from ``analysis.extras["speed_hz"]`` (and the span within
+    the capture from ``extras["speed_span_hz"]``) when the speed stage puts it
+    there. Without a speed stage at all, speed bins cannot be told apart and
+    the machine is treated as one operating state.
+    """
+    from agent.featureset import features_from_analysis
+    from agent.opstate import classify
+
+    op_cfg, b_cfg, a_cfg = settings(cfg)
+    extras = getattr(analysis, "extras", None) or {}
+    if "speed_hz" not in extras:
+        op_cfg = replace(op_cfg, speed_bin_edges_rpm=())
+    fv = features_from_analysis(analysis, cfg.machine.line_hz)
+    op = classify(fv[ISO_FEATURE], extras.get("speed_hz"), op_cfg, previous=engine.op_previous,
+                  speed_span_hz=extras.get("speed_span_hz"))
+    return step(engine, baselines, fv, op, analysis.capture.t0_utc_s, a_cfg, b_cfg,
+                quality_ok=quality_ok, quality_problems=quality_problems)

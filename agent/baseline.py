@@ -77,8 +77,8 @@ class BaselineConfig:
     min_feature_fraction: float = 0.5
 
     def __post_init__(self) -> None:
-        if not isinstance(self.learn_captures, int) or not 10 <= self.learn_captures <= 100_000:
-            raise ValueError(f"learn_captures must be an integer in [10, 100000], got {self.learn_captures!r}")
+        if not isinstance(self.learn_captures, int) or not 3 <= self.learn_captures <= 100_000:
+            raise ValueError(f"learn_captures must be an integer in [3, 100000], got {self.learn_captures!r}")
         if not (isinstance(self.learn_hours, (int, float)) and 0 <= self.learn_hours <= 24 * 365):
             raise ValueError(f"learn_hours must be in [0, 8760], got {self.learn_hours!r}")
         if not isinstance(self.reservoir_size, int) or not 16 <= self.reservoir_size <= 65536:

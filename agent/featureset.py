@@ -220,3 +220,19 @@ def build_features(
     if envelope_levels:
         feats.update(_named_levels(envelope_levels, "envelope"))
     return FeatureVector(feats)
+
+
+def features_from_analysis(analysis, line_hz: float | None = 50.0) -> FeatureVector:
+    """The feature vector of a :class:`agent.pipeline.Analysis`.
+
+    Uses its spectra and overall levels; order levels and envelope levels are
+    taken from ``analysis.extras["order_levels_mm_s"]`` (order → mm/s) and
+    ``analysis.extras["envelope_levels_g"]`` (name → g) when the speed and
+    envelope stages put them there.
+    """
+    o = analysis.overall
+    tm = {"vel_rms_mm_s": o.vel_rms_mm_s, "acc_rms_g": o.acc_rms_g, "acc_peak_g": o.acc_peak_g,
+          "crest_factor": o.crest_factor, "kurtosis": o.kurtosis}
+    extras = getattr(analysis, "extras", None) or {}
+    return build_features(analysis.vel, analysis.acc, tm, extras.get("order_levels_mm_s"),
+                          extras.get("envelope_levels_g"), iso_band_hz=o.iso_band_hz, line_hz=line_hz)

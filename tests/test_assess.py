@@ -21,7 +21,7 @@ from agent.assess import (
 from agent.baseline import BaselineConfig, Baselines, learn, to_log
 from agent.errors import IncompatibleStateFile
 from agent.featureset import FeatureVector
-from agent.iso20816 import ISO20816_3_LIMITS, velocity_zone, zone_limits
+from agent.features import ISO20816_3_DISPLACEMENT_UM, ISO20816_3_VELOCITY_MM_S, iso_zone
 from agent.model import MachineState
 from agent.opstate import OpStateConfig, classify
 from tests.healthy_sim import healthy_run
@@ -93,10 +93,10 @@ def test_healthy_levels_sit_where_the_documentation_says():
         lv = feature_levels(name, st, CFG)
         fac = math.exp(to_log(name, lv.alert) - st.median_log)  # dB features: amplitude ratio
         dfac = math.exp(to_log(name, lv.danger) - st.median_log)
-        assert fac >= CFG.min_ratio_alert - 1e-9
-        assert dfac >= CFG.ratio_danger - 1e-9 or lv.danger_source.startswith("ISO 20816-3")
+        assert fac >= CFG.min_alert_ratio - 1e-9
+        assert dfac >= CFG.danger_ratio - 1e-9 or lv.danger_source.startswith("ISO 20816-3")
         if not lv.noisy:
-            assert fac <= CFG.ratio_alert
+            assert fac <= CFG.alert_ratio
     # the core severity features are steady enough for a doubling to be detected
     noisy = {n for n, st in sb.stats.items() if feature_levels(n, st, CFG).noisy}
     assert noisy <= {"bpfo_de_g", "order_0.5x_mm_s", "floor_hf_db"}, noisy
@@ -295,8 +295,8 @@ def test_reset_after_relearn_goes_back_to_learning():
     assert events[0].old == "alert" and events[0].new == "learning"
 
 
-@pytest.mark.parametrize("kw", [{"persistence_n": 4}, {"hysteresis": 1.2}, {"ratio_danger": 1.5},
-                                {"iso_group": 3}, {"iso_support": "soft"}, {"rate_ratio": 0.5},
+@pytest.mark.parametrize("kw", [{"persistence_n": 4}, {"hysteresis": 1.2}, {"danger_ratio": 1.5},
+                                {"iso_group": 3}, {"iso_support": "soft"}, {"k_spread": 0.0}, {"rate_ratio": 0.5},
                                 {"iso_alert_zone": "D", "iso_danger_zone": "C"}])
 def test_alarm_config_validation(kw):
     with pytest.raises(ValueError):
@@ -317,23 +317,21 @@ ISO_TABLE_FROM_MEMORY = {
 
 @pytest.mark.parametrize("key", sorted(ISO_TABLE_FROM_MEMORY))
 def test_iso_zone_limits_are_the_alarm_defaults(key):
+    # the displacement = v/(2πf) consistency of the same table is checked in test_features.py
     group, support = key
     vel, disp = ISO_TABLE_FROM_MEMORY[key]
-    lim = zone_limits(group, support)
-    assert lim.vel_mm_s == vel and lim.disp_um == disp
+    assert ISO20816_3_VELOCITY_MM_S[key] == vel and ISO20816_3_DISPLACEMENT_UM[key] == disp
     lv = feature_levels("vel_rms_mm_s", None, AlarmConfig(iso_group=group, iso_support=support))
     assert (lv.alert, lv.danger) == (vel[1], vel[2])  # zone C → alert, zone D → danger
-    # a value on a boundary belongs to the upper zone
-    assert [velocity_zone(v, lim) for v in (0.0, vel[0] - 0.01, vel[0], vel[1], vel[2])] == list("AABCD")
-
-
-@pytest.mark.parametrize("key", sorted(ISO20816_3_LIMITS))
-def test_iso_displacement_is_velocity_over_2_pi_f(key):
-    # REFERENCES §1.5 [C]: displacement boundary = v/(2πf), f = 12.5 Hz (group 1) or 10 Hz (group 2)
-    lim = ISO20816_3_LIMITS[key]
-    f_hz = 12.5 if lim.group == 1 else 10.0
-    for v, d in zip(lim.vel_mm_s, lim.disp_um):
-        assert d == pytest.approx(v / (2 * math.pi * f_hz) * 1000.0, rel=0.02)
+    assert lv.alert_source == f"ISO 20816-3 group {group} {support} zone C"
+    # a value on a boundary belongs to the lower zone (agent.features.iso_zone): no alarm exactly at B/C
+    out = []
+    engine, b = EngineState(), Baselines()
+    cfg = AlarmConfig(iso_group=group, iso_support=support, persistence_n=1, persistence_m=1)
+    for v in (vel[1], vel[1] * 1.001, vel[2] * 1.001):
+        engine, b, a = step(engine, b, FeatureVector({"vel_rms_mm_s": v}), steady_op(v), 0.0, cfg, BCFG)
+        out.append((a.machine, a.iso_zone))
+    assert out == [(MachineState.LEARNING, "B"), (MachineState.ALERT, "C"), (MachineState.DANGER, "D")]
 
 
 def test_relative_level_wins_when_lower_than_iso():
@@ -346,3 +344,38 @@ def test_relative_level_wins_when_lower_than_iso():
     assert lv.danger == pytest.approx(4.0 * m, rel=1e-12) and lv.danger < 4.5 and "baseline" in lv.danger_source
     hi = feature_levels("vel_rms_mm_s", replace(st, median_log=math.log(2.5)), CFG)
     assert (hi.alert, hi.danger) == (2.8, 4.5) and "ISO 20816-3" in hi.alert_source
+
+
+# ---------------------------------------------------------------- wiring to the config and the pipeline
+
+def test_agent_defaults_are_the_tested_defaults():
+    from agent.assess import settings
+    from agent.config import AgentConfig
+
+    assert settings(AgentConfig()) == (OpStateConfig(), BaselineConfig(), AlarmConfig())
+
+
+def test_judge_analysis_learns_then_alarms_on_a_doubling():
+    import dataclasses
+
+    from agent.assess import judge_analysis
+    from agent.config import AgentConfig
+    from agent.model import Capture
+    from agent.pipeline import analyse_capture
+    from tests.healthy_sim import FS_HZ, healthy_waveform
+
+    cfg = AgentConfig()
+    cfg = dataclasses.replace(cfg, baseline=dataclasses.replace(cfg.baseline, learn_captures=20),
+                              source=dataclasses.replace(cfg.source, fs_hz=FS_HZ))
+    rng = np.random.default_rng(5)
+    engine, b = EngineState(), Baselines()
+    states = []
+    for i in range(30):
+        x = healthy_waveform(rng, 24.6, scale={1.0: 2.0, 2.0: 2.0, 6.0: 2.0} if i >= 25 else None)
+        a = analyse_capture(Capture(x, FS_HZ, t0_utc_s=1.7e9 + 60 * i), cfg)
+        engine, b, res = judge_analysis(engine, b, a, cfg)
+        states.append(res.machine)
+    # first capture: start (transient); 20 learnt; then normal; the doubled 1X/2X/6X alert within 2 captures
+    assert states[:21] == [MachineState.LEARNING] * 21
+    assert states[21:25] == [MachineState.NORMAL] * 4
+    assert states[26] == MachineState.ALERT
