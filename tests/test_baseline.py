@@ -133,7 +133,7 @@ def test_learn_rejects_missing_key():
         learn(Baselines(), "", fv(vel_rms_mm_s=1.0), 0.0, BaselineConfig())
 
 
-@pytest.mark.parametrize("kw", [{"learn_captures": 5}, {"learn_hours": -1.0}, {"reservoir_size": 4},
+@pytest.mark.parametrize("kw", [{"learn_captures": 2}, {"learn_hours": -1.0}, {"reservoir_size": 4},
                                 {"min_feature_fraction": 0.0}])
 def test_config_validation(kw):
     with pytest.raises(ValueError):
