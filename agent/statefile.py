@@ -18,27 +18,19 @@ from agent.errors import IncompatibleStateFile, StoreError
 
 
 def write_atomic(path: str | os.PathLike, data: bytes) -> None:
-    """Replace ``path`` with ``data`` atomically and durably; StoreError on failure."""
+    """Replace ``path`` with ``data`` atomically and durably (creating its folder); StoreError on failure.
+
+    The writing itself is :func:`agent.store.write_atomic` (temporary file,
+    fsync, ``os.replace``, fsync of the folder).
+    """
+    from agent.store import write_atomic as _store_write_atomic
+
     path = Path(path)
-    tmp = path.with_name(f".{path.name}.tmp{os.getpid()}")
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
-        with open(tmp, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-        dir_fd = os.open(path.parent, os.O_RDONLY)
-        try:
-            os.fsync(dir_fd)
-        finally:
-            os.close(dir_fd)
     except OSError as exc:
-        try:
-            tmp.unlink(missing_ok=True)
-        except OSError:
-            pass
         raise StoreError(f"cannot write state file {path}: {exc.strerror or exc}") from exc
+    _store_write_atomic(path, data)
 
 
 def dump_json_state(fmt: str, version: int, body: dict) -> bytes:

@@ -199,7 +199,7 @@ def test_damaged_file_never_crashes(tmp_path, content):
 def test_unwritable_state_dir_is_store_error(tmp_path):
     blocker = tmp_path / "state"
     blocker.write_text("a file where the state directory should be")
-    with pytest.raises(StoreError, match="cannot write state file"):
+    with pytest.raises(StoreError, match="cannot write"):
         BaselineStore(blocker).save(Baselines())
 
 
@@ -268,7 +268,7 @@ def test_baseline_file_survives_kill_9_during_write(tmp_path):
                 j = int(name[1:].split("_")[0])
                 assert s[0] == b.generation * 1000 + j and len(s) == 2000
         generations.append(b.generation)
-        leftovers = list(tmp_path.glob(".baseline.json.tmp*"))
+        leftovers = list(tmp_path.glob(".tmp-baseline.json"))
         killed_mid_write += bool(leftovers)
         for p in leftovers:
             p.unlink()
