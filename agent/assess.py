@@ -33,7 +33,8 @@ Alarm logic per feature (OPC UA Part 9 B.1.5 on-delay/deadband ideas)
 * persistence: a level is raised when at least N of the last M usable
   captures exceed it (default 2 of 3);
 * hysteresis: a raised level clears after N consecutive captures below
-  ``hysteresis`` × the level (default 0.8);
+  ``hysteresis`` × the level (default 0.8, in amplitude: −1.9 dB for a
+  decibel feature);
 * rate of change: over the last ``rate_window`` usable captures, the median
   of the newest three above the median of the oldest three by a factor of at
   least max(``rate_ratio``, exp(k·σ·√2)), and above the baseline median,
@@ -309,6 +310,11 @@ def _rate_exceeded(history: tuple[float, ...], stats: FeatureStats | None, cfg: 
     return (new - old) >= need and new > stats.median_log, math.exp(new - old)
 
 
+def _clear_level(name: str, level: float, cfg: AlarmConfig) -> float:
+    """``hysteresis`` × ``level`` in amplitude (for a dB feature: level + 20·log10(hysteresis))."""
+    return from_log(name, to_log(name, level) + math.log(cfg.hysteresis))
+
+
 def _update_feature(fa: FeatureAlarm, name: str, value: float, lv: Levels, stats: FeatureStats | None,
                     t_s: float, cfg: AlarmConfig) -> tuple[FeatureAlarm, str]:
     """One usable capture through one feature's alarm machine; returns the new state and the reason."""
@@ -340,14 +346,14 @@ def _update_feature(fa: FeatureAlarm, name: str, value: float, lv: Levels, stats
     below = fa.below
     if level == fa.level and level > NORMAL:
         lim = lv.danger if level == DANGER else lv.alert
-        clear_at = None if lim is None else cfg.hysteresis * lim
+        clear_at = None if lim is None else _clear_level(name, lim, cfg)
         if clear_at is None or (value < clear_at and not (level == ALERT and rate_hit)):
             below += 1
         else:
             below = 0
         if below >= cfg.persistence_n:
             new = NORMAL
-            if level == DANGER and lv.alert is not None and value >= cfg.hysteresis * lv.alert:
+            if level == DANGER and lv.alert is not None and value >= _clear_level(name, lv.alert, cfg):
                 new = ALERT
             reason = (f"{value:.4g} below {cfg.hysteresis:g}× {LEVEL_NAMES[level]} level"
                       + ("" if lim is None else f" {lim:.4g}") + f" for {below} captures")

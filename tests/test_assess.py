@@ -379,3 +379,19 @@ def test_judge_analysis_learns_then_alarms_on_a_doubling():
     assert states[:21] == [MachineState.LEARNING] * 21
     assert states[21:25] == [MachineState.NORMAL] * 4
     assert states[26] == MachineState.ALERT
+
+
+def test_hysteresis_of_a_decibel_feature_is_in_amplitude():
+    # floor_hf_db learned at −60 dB ± 0.5 dB: alert at ×1.5 = −60 + 3.52 dB; clears below that + 20·log10(0.8) = −1.94 dB
+    rng = np.random.default_rng(2)
+    b = Baselines()
+    for i in range(BCFG.learn_captures):
+        b = learn(b, "speed0", FeatureVector({"floor_hf_db": -60.0 + rng.normal(0, 0.3)}), float(i), BCFG)
+    engine, states = EngineState(), []
+    for x in (-55.0, -55.0, -57.5, -57.5, -59.0, -59.0):
+        engine, b, a = step(engine, b, FeatureVector({"floor_hf_db": x}), steady_op(), 0.0, CFG, BCFG)
+        states.append(a.features[0].state)
+    alert_db = a.features[0].alert
+    assert alert_db == pytest.approx(-60.0 + 20 * math.log10(1.5), abs=0.2)
+    # −57.5 dB lies inside the hysteresis band (above alert − 1.94 dB ≈ −58.4 dB): the alert holds
+    assert states == ["normal", "alert", "alert", "alert", "alert", "normal"]
