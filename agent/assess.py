@@ -35,7 +35,8 @@ Alarm logic per feature (OPC UA Part 9 B.1.5 on-delay/deadband ideas)
 * hysteresis: a raised level clears after N consecutive captures below
   ``hysteresis`` × the level (default 0.8, in amplitude: −1.9 dB for a
   decibel feature);
-* rate of change: over the last ``rate_window`` usable captures, the median
+* rate of change: over the last ``rate_window`` usable captures of one
+  operating state (the history is cleared when the state changes), the median
   of the newest three above the median of the oldest three by a factor of at
   least max(``rate_ratio``, exp(k·σ·√2)), and above the baseline median,
   counts as an alert exceedance;
@@ -235,6 +236,7 @@ class EngineState:
     features: Mapping[str, FeatureAlarm] = field(default_factory=dict)
     op_previous: OperatingState | None = None
     reason: str = ""
+    history_key: str = ""  # operating state of the rate-of-change histories (cleared when it changes)
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "features", types.MappingProxyType(dict(sorted(self.features.items()))))
@@ -247,6 +249,7 @@ class EngineState:
             "machine": self.machine.value,
             "since_utc_s": self.since_utc_s,
             "reason": self.reason,
+            "history_key": self.history_key,
             "features": {k: v.to_json() for k, v in self.features.items()},
             "op_previous": None if op is None else {
                 "mode": op.mode, "transient": op.transient, "speed_hz": op.speed_hz, "speed_bin": op.speed_bin,
@@ -269,6 +272,7 @@ class EngineState:
                 features={str(k): FeatureAlarm.from_json(v) for k, v in d["features"].items()},
                 op_previous=None if op is None else OperatingState(**op),
                 reason=str(d["reason"]),
+                history_key=str(d["history_key"]),
             )
         except (KeyError, TypeError, ValueError) as exc:
             raise IncompatibleStateFile(f"alarm-engine state is malformed ({type(exc).__name__}: {exc})") from exc
@@ -412,6 +416,7 @@ def step(
     progress = 0.0
     zone = None
     worst_name = ""
+    history_key = engine.history_key
 
     if not quality_ok:
         machine = MachineState.SENSOR_FAULT
@@ -428,6 +433,9 @@ def step(
         if fv is not None and ISO_FEATURE in fv:
             zone = iso_zone(fv[ISO_FEATURE], cfg.iso_group, cfg.iso_support)
         if op.usable and fv is not None:
+            if op.key != history_key:  # another operating state: a rise against the last one's values means nothing
+                feats = {k: replace(v, history=()) for k, v in feats.items()}
+                history_key = op.key
             for name, value in fv.values.items():
                 stats = sb.stats.get(name) if ready else None
                 lv = feature_levels(name, stats, cfg)
@@ -461,7 +469,7 @@ def step(
         events.append(AlarmEvent(t_utc_s, "machine", engine.machine.value, machine.value, worst_name,
                                  fa_val, lvl, reason))
     since = engine.since_utc_s if machine == engine.machine else t_utc_s
-    engine = EngineState(machine, since, feats, new_op, reason)
+    engine = EngineState(machine, since, feats, new_op, reason, history_key)
     return engine, baselines, Assessment(t_utc_s, machine, reason, op if quality_ok else None, base_status,
                                          progress, zone, tuple(f_out), tuple(events))
 
@@ -502,7 +510,7 @@ def reset_alarms(engine: EngineState, t_utc_s: float, reason: str = "relearn") -
     if engine.machine != MachineState.LEARNING:
         events.append(AlarmEvent(t_utc_s, "machine", engine.machine.value, MachineState.LEARNING.value,
                                  reason=reason))
-    return EngineState(MachineState.LEARNING, t_utc_s, {}, engine.op_previous, reason), tuple(events)
+    return EngineState(MachineState.LEARNING, t_utc_s, {}, engine.op_previous, reason, ""), tuple(events)
 
 
 def settings(cfg) -> tuple[OpStateConfig, BaselineConfig, AlarmConfig]:
@@ -536,7 +544,10 @@ def judge_analysis(engine: EngineState, baselines: Baselines, analysis, cfg, *, 
     op_cfg, b_cfg, a_cfg = settings(cfg)
     extras = getattr(analysis, "extras", None) or {}
     if "speed_hz" not in extras:
+        # no speed stage: speed bins cannot be told apart, and a change of speed would look like a
+        # rise, so the rate-of-change alarm is off too
         op_cfg = replace(op_cfg, speed_bin_edges_rpm=())
+        a_cfg = replace(a_cfg, rate_ratio=0.0)
     fv = features_from_analysis(analysis, cfg.machine.line_hz)
     op = classify(fv[ISO_FEATURE], extras.get("speed_hz"), op_cfg, previous=engine.op_previous,
                   speed_span_hz=extras.get("speed_span_hz"))

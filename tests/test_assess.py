@@ -395,3 +395,27 @@ def test_hysteresis_of_a_decibel_feature_is_in_amplitude():
     assert alert_db == pytest.approx(-60.0 + 20 * math.log10(1.5), abs=0.2)
     # −57.5 dB lies inside the hysteresis band (above alert − 1.94 dB ≈ −58.4 dB): the alert holds
     assert states == ["normal", "alert", "alert", "alert", "alert", "normal"]
+
+
+def test_rate_of_change_history_restarts_in_another_operating_state():
+    b = model_baselines()
+    b = learn_state(b, "speed1")
+    engine = EngineState()
+    low = FeatureVector({"vel_rms_mm_s": 1.0, "order_1x_mm_s": 0.55})
+    high = FeatureVector({"vel_rms_mm_s": 1.0, "order_1x_mm_s": 1.15})
+    op0, op1 = steady_op(), steady_op()
+    op1 = replace(op1, key="speed1", speed_bin=1)
+    events = []
+    for i, (v, op) in enumerate([(low, op0)] * 6 + [(high, op1)] * 8):
+        engine, b, a = step(engine, b, v, op, float(i), CFG, BCFG)
+        events += [e for e in a.events if e.scope == "feature"]
+    assert events == []  # the same rise inside one operating state is an alert (test above)
+
+
+def learn_state(b, key, sigma=0.05, seed=12):
+    rng = np.random.default_rng(seed)
+    for i in range(BCFG.learn_captures):
+        v = FeatureVector({"vel_rms_mm_s": 1.0 * math.exp(rng.normal(0, sigma)),
+                           "order_1x_mm_s": 0.8 * math.exp(rng.normal(0, sigma))})
+        b = learn(b, key, v, 1e9 + 60 * i, BCFG)
+    return b
