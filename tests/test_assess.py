@@ -21,7 +21,7 @@ from agent.assess import (
 from agent.baseline import BaselineConfig, Baselines, learn, to_log
 from agent.errors import IncompatibleStateFile
 from agent.featureset import FeatureVector
-from agent.features import ISO20816_3_DISPLACEMENT_UM, ISO20816_3_VELOCITY_MM_S, iso_zone
+from agent.features import ISO20816_3_DISPLACEMENT_UM, ISO20816_3_VELOCITY_MM_S
 from agent.model import MachineState
 from agent.opstate import OpStateConfig, classify
 from tests.healthy_sim import healthy_run
