@@ -533,23 +533,26 @@ def judge_analysis(engine: EngineState, baselines: Baselines, analysis, cfg, *, 
                    quality_problems: tuple[str, ...] = ()) -> tuple[EngineState, Baselines, Assessment]:
     """One :class:`agent.pipeline.Analysis` through operating state, learning and alarms (for the monitor step).
 
-    The speed comes from ``analysis.extras["speed_hz"]`` (and the span within
-    the capture from ``extras["speed_span_hz"]``) when the speed stage puts it
-    there. Without a speed stage at all, speed bins cannot be told apart and
-    the machine is treated as one operating state.
+    The speed and its span within the capture come from the analysis' speed
+    view (``analysis.speed``). Without a speed stage at all, speed bins cannot
+    be told apart and the machine is treated as one operating state.
     """
     from agent.featureset import features_from_analysis
     from agent.opstate import classify
 
     op_cfg, b_cfg, a_cfg = settings(cfg)
-    extras = getattr(analysis, "extras", None) or {}
-    if "speed_hz" not in extras:
+    sv = getattr(analysis, "speed", None)
+    speed_hz = span_hz = None
+    if sv is None:
         # no speed stage: speed bins cannot be told apart, and a change of speed would look like a
         # rise, so the rate-of-change alarm is off too
         op_cfg = replace(op_cfg, speed_bin_edges_rpm=())
         a_cfg = replace(a_cfg, rate_ratio=0.0)
+    elif sv.speed.found:
+        speed_hz = sv.speed.speed_hz
+        if sv.profile is not None:
+            span_hz = sv.profile.span_hz
     fv = features_from_analysis(analysis, cfg.machine.line_hz)
-    op = classify(fv[ISO_FEATURE], extras.get("speed_hz"), op_cfg, previous=engine.op_previous,
-                  speed_span_hz=extras.get("speed_span_hz"))
+    op = classify(fv[ISO_FEATURE], speed_hz, op_cfg, previous=engine.op_previous, speed_span_hz=span_hz)
     return step(engine, baselines, fv, op, analysis.capture.t0_utc_s, a_cfg, b_cfg,
                 quality_ok=quality_ok, quality_problems=quality_problems)

@@ -225,14 +225,22 @@ def build_features(
 def features_from_analysis(analysis, line_hz: float | None = 50.0) -> FeatureVector:
     """The feature vector of a :class:`agent.pipeline.Analysis`.
 
-    Uses its spectra and overall levels; order levels and envelope levels are
-    taken from ``analysis.extras["order_levels_mm_s"]`` (order → mm/s) and
-    ``analysis.extras["envelope_levels_g"]`` (name → g) when the speed and
-    envelope stages put them there.
+    Uses its spectra and overall levels, the order levels of its speed view
+    (``analysis.speed.order_levels``, velocity r.m.s. mm/s; orders whose band
+    is off the spectrum are left out) and envelope levels from
+    ``analysis.extras["envelope_levels_g"]`` (name → g) when the envelope
+    stage puts them there.
     """
     o = analysis.overall
     tm = {"vel_rms_mm_s": o.vel_rms_mm_s, "acc_rms_g": o.acc_rms_g, "acc_peak_g": o.acc_peak_g,
           "crest_factor": o.crest_factor, "kurtosis": o.kurtosis}
     extras = getattr(analysis, "extras", None) or {}
-    return build_features(analysis.vel, analysis.acc, tm, extras.get("order_levels_mm_s"),
-                          extras.get("envelope_levels_g"), iso_band_hz=o.iso_band_hz, line_hz=line_hz)
+    orders = None
+    sv = getattr(analysis, "speed", None)
+    lv = getattr(sv, "order_levels", None) if sv is not None else None
+    if lv is not None and getattr(sv.speed, "found", False):
+        if lv.quantity != "velocity" or lv.unit != "mm/s":
+            raise ValueError(f"order levels must be velocity in mm/s, got {lv.quantity} in {lv.unit}")
+        orders = {k: v for k, v in lv.as_dict().items() if math.isfinite(v)}
+    return build_features(analysis.vel, analysis.acc, tm, orders, extras.get("envelope_levels_g"),
+                          iso_band_hz=o.iso_band_hz, line_hz=line_hz)

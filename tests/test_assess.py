@@ -379,6 +379,10 @@ def test_judge_analysis_learns_then_alarms_on_a_doubling():
     assert states[:21] == [MachineState.LEARNING] * 21
     assert states[21:25] == [MachineState.NORMAL] * 4
     assert states[26] == MachineState.ALERT
+    # the speed stage found the 24.6 Hz shaft (1476 r/min) and its order levels are judged too
+    assert res.op.speed_hz == pytest.approx(24.6, rel=0.01) and res.op.key == "speed0"
+    judged = {f.name: f for f in res.features}
+    assert judged["order_1x_mm_s"].state == "alert" and judged["order_1x_mm_s"].ratio == pytest.approx(2.0, rel=0.25)
 
 
 def test_hysteresis_of_a_decibel_feature_is_in_amplitude():

@@ -119,7 +119,8 @@ def test_daemon_publishes_state_measurements_and_events(tmp_path, mqtt_broker):
     from agent.assess import EngineState
     from agent.baseline import BaselineStore
 
-    learned = BaselineStore(tmp_path / "state").load_strict().get("speed0")
+    # the demo pump runs at 1476 r/min: speed bin 2 of the demo's edges [600, 1200, 1600] r/min
+    learned = BaselineStore(tmp_path / "state").load_strict().get("speed2")
     assert learned is not None and not learned.ready and learned.n_captures >= 4
     engine = EngineState.from_json(json.loads((tmp_path / "state" / "alarms.json").read_text()))
     assert engine.machine.value == "learning"
