@@ -36,7 +36,8 @@ Alarm logic per feature (OPC UA Part 9 B.1.5 on-delay/deadband ideas)
   ``hysteresis`` × the level (default 0.8, in amplitude: −1.9 dB for a
   decibel feature);
 * rate of change: over the last ``rate_window`` usable captures of one
-  operating state (the history is cleared when the state changes), the median
+  operating state (the history restarts when the state changes, after a
+  stop and after a transient capture), the median
   of the newest three above the median of the oldest three by a factor of at
   least max(``rate_ratio``, exp(k·σ·√2)), and above the baseline median,
   counts as an alert exceedance;
@@ -424,6 +425,7 @@ def step(
         new_op = engine.op_previous
     elif op.mode == STOPPED:
         machine, reason, new_op = MachineState.STOPPED, f"machine stopped ({op.reason})", op
+        history_key = ""
     else:
         new_op = op
         sb = baselines.get(op.key) if op.key else None
@@ -457,6 +459,7 @@ def step(
             baselines_next = baselines
         machine, worst_name, reason = _overall(feats, ready, cfg)
         if not op.usable:
+            history_key = ""  # conditions changed (start, speed change): rates restart after it
             reason += f" (capture not judged: {op.reason})"
         baselines = baselines_next
 

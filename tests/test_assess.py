@@ -423,3 +423,17 @@ def learn_state(b, key, sigma=0.05, seed=12):
                            "order_1x_mm_s": 0.8 * math.exp(rng.normal(0, sigma))})
         b = learn(b, key, v, 1e9 + 60 * i, BCFG)
     return b
+
+
+def test_rate_of_change_history_restarts_after_a_transient():
+    b = model_baselines()
+    engine = EngineState()
+    low = FeatureVector({"vel_rms_mm_s": 1.0, "order_1x_mm_s": 0.55})
+    high = FeatureVector({"vel_rms_mm_s": 1.0, "order_1x_mm_s": 1.15})
+    steady = steady_op()
+    moved = replace(steady, transient=True, reason="speed changed 330 rpm since the last capture")
+    events = []
+    for i, (v, op) in enumerate([(low, steady)] * 6 + [(high, moved)] + [(high, steady)] * 8):
+        engine, b, a = step(engine, b, v, op, float(i), CFG, BCFG)
+        events += [e for e in a.events if e.scope == "feature"]
+    assert events == []
