@@ -188,18 +188,36 @@ class AnalysisConfig:
 
 @dataclass(frozen=True, slots=True)
 class BaselineConfig:
-    learn_captures: int = _f(30, range=(3, 100_000))
+    learn_captures: int = _f(100, range=(3, 100_000), help="steady captures per operating state to learn its normal")
     learn_hours: float = _f(0.0, range=(0.0, 10_000.0), help="also require this many hours; 0 = off")
     speed_bin_edges_rpm: tuple[float, ...] = _f(factory=tuple, help="speed bin edges; empty = one bin")
+    reservoir_size: int = _f(256, range=(16, 65_536), help="samples kept per feature while learning")
+    stopped_vel_mm_s: float = _f(0.2, range=(0.0, 100.0), help="overall velocity below this = stopped")
+    min_running_rpm: float = _f(60.0, range=(0.0, 100_000.0), help="a found speed below this = stopped")
+    speed_tol_frac: float = _f(0.02, range=(0.0, 1.0),
+                               help="speed change (fraction) that marks a capture as transient")
+    speed_tol_rpm: float = _f(10.0, range=(0.0, 10_000.0), help="... or this many rpm, whichever is larger")
 
 
 @dataclass(frozen=True, slots=True)
 class AlarmsConfig:
-    alert_ratio: float = _f(2.0, range=(1.05, 100.0), help="alert at this × baseline (amplitude)")
-    danger_ratio: float = _f(4.0, range=(1.1, 1000.0))
-    persistence_n: int = _f(3, range=(1, 100))
-    persistence_m: int = _f(3, range=(1, 100))
+    alert_ratio: float = _f(2.0, range=(1.05, 100.0),
+                            help="a doubling (×2, common practice) is an alert for any feature of ordinary scatter")
+    danger_ratio: float = _f(4.0, range=(1.1, 1000.0), help="danger at this × baseline (amplitude)")
+    min_alert_ratio: float = _f(1.5, range=(1.01, 100.0), help="an alert level is never closer to normal than this")
+    k_spread: float = _f(4.0, range=(1.0, 20.0), help="statistical alert level: median × exp(k · spread)")
+    min_spread_log: float = _f(0.02, range=(0.0, 1.0), help="floor on a feature's learned log spread")
+    min_level_mm_s: float = _f(0.01, range=(0.0, 100.0), help="no velocity alarm below this level")
+    min_level_g: float = _f(0.001, range=(0.0, 100.0), help="no acceleration alarm below this level")
+    persistence_n: int = _f(2, range=(1, 100), help="n exceedances ...")
+    persistence_m: int = _f(3, range=(1, 100), help="... within the last m captures raise a level")
+    hysteresis: float = _f(0.8, range=(0.1, 0.99), help="a level clears below this × the level")
+    latch: bool = _f(False, help="keep raised levels until acknowledged")
+    rate_ratio: float = _f(1.5, range=(0.0, 100.0), help="rate-of-change alarm on a rise by this factor; 0 = off")
+    rate_window: int = _f(12, range=(6, 10_000), help="captures the rate-of-change alarm looks back")
     use_iso_zones: bool = _f(True)
+    iso_alert_zone: str = _f("C", choices=("B", "C", "D"), help="ISO 20816-3 zone that raises an alert")
+    iso_danger_zone: str = _f("D", choices=("B", "C", "D"), help="ISO 20816-3 zone that raises danger")
 
 
 @dataclass(frozen=True, slots=True)
@@ -378,6 +396,16 @@ def _cross_checks(cfg: AgentConfig, errors: list[str]) -> None:
             f"alarms.persistence_n: {cfg.alarms.persistence_n} must not exceed alarms.persistence_m "
             f"{cfg.alarms.persistence_m}"
         )
+    if cfg.alarms.min_alert_ratio > cfg.alarms.alert_ratio:
+        errors.append(f"alarms.min_alert_ratio: {cfg.alarms.min_alert_ratio} must not exceed alarms.alert_ratio "
+                      f"{cfg.alarms.alert_ratio}")
+    if 0 < cfg.alarms.rate_ratio <= 1:
+        errors.append(f"alarms.rate_ratio: {cfg.alarms.rate_ratio} must be 0 (off) or above 1")
+    if cfg.alarms.iso_danger_zone < cfg.alarms.iso_alert_zone:
+        errors.append(f"alarms.iso_danger_zone: {cfg.alarms.iso_danger_zone!r} must not be below "
+                      f"alarms.iso_alert_zone {cfg.alarms.iso_alert_zone!r}")
+    if any(e <= 0 for e in cfg.baseline.speed_bin_edges_rpm):
+        errors.append(f"baseline.speed_bin_edges_rpm: {list(cfg.baseline.speed_bin_edges_rpm)} must be above 0")
     names = [b.name for b in mach.bearings]
     for i, b in enumerate(mach.bearings):
         if b.ball_diameter_mm >= b.pitch_diameter_mm:

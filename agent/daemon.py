@@ -267,12 +267,42 @@ class Daemon:
             pass
         except (OSError, ValueError, KeyError, TypeError) as exc:
             log_event("state_file_ignored", "warning", file=str(p), error=str(exc))
+        self._restore_alarm_state(state_dir)
+
+    def _restore_alarm_state(self, state_dir: Path) -> None:
+        """Learned baselines and the alarm engine; an incompatible file is set aside and learning restarts."""
+        from agent.assess import EngineState
+        from agent.baseline import BaselineStore
+        from agent.errors import IncompatibleStateFile
+
+        try:
+            baselines, problem = BaselineStore(state_dir).load()
+        except StoreError as exc:
+            self._count_store_error(exc)
+            return
+        if problem:
+            log_event("baseline_set_aside", "warning", problem=problem)
+        engine = None
+        p = state_dir / "alarms.json"
+        try:
+            engine = EngineState.from_json(json.loads(p.read_text(encoding="utf-8")))
+        except FileNotFoundError:
+            pass
+        except (OSError, ValueError, IncompatibleStateFile) as exc:
+            log_event("state_file_ignored", "warning", file=str(p), error=str(exc))
+        self.ms = dataclasses.replace(self.ms, baselines=baselines, engine=engine)
 
     def _save_state(self) -> None:
         from agent.store import json_bytes, write_atomic
 
         try:
             write_atomic(self._state_file(self.store.state_dir), json_bytes(self.ms.to_json()))
+            if self.ms.baselines is not None:
+                from agent.baseline import BaselineStore
+
+                BaselineStore(self.store.state_dir).save(self.ms.baselines)
+            if self.ms.engine is not None:
+                write_atomic(self.store.state_dir / "alarms.json", json_bytes(self.ms.engine.to_json()))
         except StoreError as exc:
             self._count_store_error(exc)
 
@@ -302,6 +332,15 @@ class Daemon:
 
     def _relearn(self) -> None:
         log_event("relearn_requested")
+        if self.store is not None:
+            from agent.baseline import BaselineStore
+
+            try:
+                archived = BaselineStore(self.store.state_dir).archive(self.wall())
+                if archived is not None:
+                    log_event("baseline_archived", file=str(archived))
+            except (StoreError, OSError) as exc:
+                self._count_store_error(exc)
         self.ms = dataclasses.replace(self.ms, baselines=None, engine=None)
 
     # ── the work ──

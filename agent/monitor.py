@@ -11,7 +11,8 @@ comes from the captures' own timestamps, never from the clock.
    and is never used for learning or machine alarms;
 2. analysis of the first channel (:func:`agent.pipeline.analyse_capture`):
    spectra, overall levels, speed, peaks, findings;
-3. assessment against the ISO 20816-3 zones and the learned baseline;
+3. assessment against the ISO 20816-3 zones and the learned baseline
+   (:func:`agent.assess.judge_analysis`: operating state, learning, alarms);
 4. the operator's state, its one-line reason, action and urgency, and the
    events to publish (state changes, new findings).
 """
@@ -22,6 +23,8 @@ import dataclasses
 from dataclasses import dataclass, field
 from typing import Any
 
+from agent.assess import EngineState, judge_analysis
+from agent.baseline import Baselines
 from agent.config import AgentConfig
 from agent.model import Capture, Finding, MachineState
 from agent.pipeline import Analysis, analyse_capture, analysis_to_json
@@ -139,14 +142,6 @@ def _features(a: Analysis) -> dict:
     }
 
 
-def _machine_state_from_zone(zone: str) -> tuple[MachineState, str]:
-    if zone == "D":
-        return MachineState.DANGER, "overall vibration in ISO 20816-3 zone D"
-    if zone == "C":
-        return MachineState.ALERT, "overall vibration in ISO 20816-3 zone C"
-    return MachineState.NORMAL, f"overall vibration in ISO 20816-3 zone {zone}"
-
-
 def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConfig) -> tuple[CaptureResult, MonitorState]:
     """Judge one capture (one per channel); return the result and the state to carry on."""
     if not captures:
@@ -162,7 +157,10 @@ def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConf
     analysis = analyse_capture(cap, cfg, previous_speed=previous)
     speed = analysis.speed.speed if analysis.speed is not None else None
     speed_hz = speed.speed_hz if speed is not None and speed.found else None
-    new_state, reason = _machine_state_from_zone(analysis.overall.iso_zone)
+    engine = ms.engine if ms.engine is not None else EngineState()
+    baselines = ms.baselines if ms.baselines is not None else Baselines()
+    engine, baselines, assessment = judge_analysis(engine, baselines, analysis, cfg)
+    new_state, reason = assessment.machine, assessment.reason
     if ms.mode == "maintenance" and new_state in (MachineState.ALERT, MachineState.DANGER):
         reason = f"maintenance mode: alarms held ({reason})"
         new_state = MachineState.NORMAL
@@ -173,6 +171,11 @@ def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConf
     if new_state != ms.state:
         events.append({"event": "state_change", "t_utc_s": t, "state": new_state.value,
                        "previous_state": ms.state.value, "reason": reason})
+    for ev in assessment.events:
+        if ev.scope == "feature":
+            events.append({"event": "alarm", "t_utc_s": ev.t_utc_s, "feature": ev.feature, "state": ev.new,
+                           "previous_state": ev.old, "severity": ev.new, "value": ev.value, "level": ev.level,
+                           "reason": ev.reason})
     codes = tuple(sorted(f.code for f in findings))
     for f in findings:
         if f.code not in ms.finding_codes:
@@ -199,7 +202,7 @@ def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConf
     )
     new_ms = dataclasses.replace(
         ms, state=new_state, since_utc_s=since, reason=reason, n_captures=ms.n_captures + 1, finding_codes=codes,
-        last_speed_hz=speed_hz,
+        last_speed_hz=speed_hz, engine=engine, baselines=baselines,
     )
     return result, new_ms
 

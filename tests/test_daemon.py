@@ -83,8 +83,10 @@ def test_daemon_publishes_state_measurements_and_events(tmp_path, mqtt_broker):
 
     cfg = dataclasses.replace(cfg, source=dataclasses.replace(cfg.source, interval_s=2.56))
     sub = Subscriber(mqtt_broker, "skv/#")
-    # healthy (zone B ~2 mm/s), then 1X family ×2.5 (zone D > 4.5 mm/s), then a stall, then healthy
-    script = [1.0, 1.0, 2.5, 2.5, "stall", 1.0]
+    # healthy (zone B ~2 mm/s), then 1X family ×2.5 (zone D > 4.5 mm/s), then a stall, then healthy;
+    # still learning the baseline (30 captures), so the ISO zones alone raise the alarm (2 of 3 captures)
+    # and it clears after two captures below 0.8 × the C/D boundary (hysteresis)
+    script = [1.0, 1.0, 2.5, 2.5, "stall", 1.0, 1.0]
     d, src = run_daemon(cfg, script)
     d.acq_interval_override = 0
     t = threading.Thread(target=d.run)
@@ -96,21 +98,32 @@ def test_daemon_publishes_state_measurements_and_events(tmp_path, mqtt_broker):
     for m in msgs:
         by_topic.setdefault(m.topic, []).append(m)
     states = [json.loads(m.payload)["state"] for m in by_topic[f"{BASE}/state"]]
-    assert states[0] == "normal" and "danger" in states and "sensor_fault" in states and states[-1] == "normal"
+    assert states[0] == "learning" and "danger" in states and "sensor_fault" in states and states[-1] == "learning"
     events = [json.loads(m.payload) for m in by_topic[f"{BASE}/events"]]
     changes = [(e["previous_state"], e["state"]) for e in events if e["type"] == "state_change"]
-    assert ("normal", "danger") in changes and ("danger", "sensor_fault") in changes
+    assert ("learning", "danger") in changes and ("danger", "sensor_fault") in changes
+    alarms = [e["detail"] for e in events if e["type"] == "alarm"]
+    assert ("vel_rms_mm_s", "normal", "danger") in [(a["feature"], a["previous_state"], a["state"]) for a in alarms]
     assert len({e["id"] for e in events}) == len(events)
     meas = [json.loads(m.payload) for m in by_topic[f"{BASE}/measurements"]]
-    assert len(meas) == 5  # one per usable capture
+    assert len(meas) == 6  # one per usable capture
     assert all("vel_rms_mm_s" in m["values"] for m in meas)
     # ISO 20816-3 group 2 rigid: > 4.5 mm/s is zone D (from memory of Annex A)
     assert max(m["values"]["vel_rms_mm_s"] for m in meas) > 4.5
     # store: one trend row per usable capture, snapshots at each state change
     db = sqlite3.connect(tmp_path / "state" / "trend.sqlite")
-    assert db.execute("SELECT COUNT(*) FROM trend").fetchone()[0] == 5
+    assert db.execute("SELECT COUNT(*) FROM trend").fetchone()[0] == 6
     snaps = sorted(p.name for p in (tmp_path / "state" / "snapshots").iterdir() if not p.name.startswith("."))
     assert len(snaps) >= 3 and all(p.endswith("state_change") or "state_change" in p for p in snaps)
+    # the baseline being learned and the alarm engine are kept in the state directory for a restart
+    from agent.assess import EngineState
+    from agent.baseline import BaselineStore
+
+    # the demo pump runs at 1476 r/min: speed bin 2 of the demo's edges [600, 1200, 1600] r/min
+    learned = BaselineStore(tmp_path / "state").load_strict().get("speed2")
+    assert learned is not None and not learned.ready and learned.n_captures >= 4
+    engine = EngineState.from_json(json.loads((tmp_path / "state" / "alarms.json").read_text()))
+    assert engine.machine.value == "learning"
     doc = json.loads((tmp_path / "state" / "snapshots" / snaps[1] / "analysis.json").read_text())
     assert doc["analysis"]["state"]["state"] in ("danger", "sensor_fault")
     sub.close()
@@ -119,7 +132,7 @@ def test_daemon_publishes_state_measurements_and_events(tmp_path, mqtt_broker):
 def test_daemon_without_broker_buffers_then_delivers(tmp_path, mqtt_broker):
     cfg = load_config(write_config(tmp_path, mqtt_broker.port))
     mqtt_broker.stop()
-    d, _ = run_daemon(cfg, [1.0, 2.5, 1.0])
+    d, _ = run_daemon(cfg, [1.0, 2.5, 2.5, 1.0, 1.0])
     d.run()
     depth = d.link.outbox.stats().depth if d.link else None
     assert depth is not None and depth > 0  # nothing lost: waiting in the outbox
@@ -127,9 +140,12 @@ def test_daemon_without_broker_buffers_then_delivers(tmp_path, mqtt_broker):
     sub = Subscriber(mqtt_broker, "skv/#")
     d2, _ = run_daemon(cfg, [1.0])
     d2.run()
-    got = sub.collect_until(lambda ms: sum(m.topic.endswith("/events") for m in ms) >= 3, 15)
-    events = [json.loads(m.payload) for m in got if m.topic.endswith("/events")]
-    assert [e["state"] for e in events if e["type"] == "state_change"][:3] == ["normal", "danger", "normal"]
+    def changes(ms):
+        evs = [json.loads(m.payload) for m in ms if m.topic.endswith("/events")]
+        return [e["state"] for e in evs if e["type"] == "state_change"]
+
+    got = sub.collect_until(lambda ms: len(changes(ms)) >= 2, 15)
+    assert changes(got)[:2] == ["danger", "learning"]
     sub.close()
 
 
