@@ -350,6 +350,21 @@ def _order_label(order: float) -> str:
 # ───────────────────────────── bearings ─────────────────────────────
 
 
+def ringing(drive: np.ndarray, ring: Resonance, fs_hz: float) -> np.ndarray:
+    """Each sample of ``drive`` rings ``ring``: drive ∗ h with h[k] = r^k·sin(k·θ).
+
+    h is the damped sinusoid exp(−ζω_n t)·sin(ω_d t) sampled at t = k/fs
+    (r = exp(−ζω_n/fs), θ = ω_d/fs), so a unit impulse gives a ringing of
+    unit envelope at t = 0. Realised as the two-pole recursion
+    y[k] = 2r·cos θ·y[k−1] − r²·y[k−2] + r·sin θ·drive[k−1].
+    """
+    wn = 2 * np.pi * ring.freq_hz
+    r = np.exp(-ring.damping * wn / fs_hz)
+    th = wn * np.sqrt(1 - ring.damping**2) / fs_hz
+    return signal.lfilter([0.0, r * np.sin(th)], [1.0, -2 * r * np.cos(th), r * r], drive)
+
+
+
 def _bearing(defect: BearingDefect, machine: SimMachine, point: OperatingPoint, fs_hz: float, n: int,
              seed, tones: list[_Tone], floor_rms: list[float]) -> tuple[np.ndarray, dict]:
     """Impact train of one defect rung through ``machine.ring``; adds stage 2+ tones to ``tones``."""
@@ -389,10 +404,7 @@ def _bearing(defect: BearingDefect, machine: SimMachine, point: OperatingPoint, 
     drive = np.zeros(n_pre + n + 1)
     np.add.at(drive, k, amp * (1 - frac))
     np.add.at(drive, k + 1, amp * frac)
-    r = np.exp(-ring.damping * wn / fs_hz)
-    th = wn * np.sqrt(1 - ring.damping**2) / fs_hz
-    y = signal.lfilter([0.0, r * np.sin(th)], [1.0, -2 * r * np.cos(th), r * r], drive[:-1])
-    y = y[n_pre:]
+    y = ringing(drive[:-1], ring, fs_hz)[n_pre:]
     kin_hz = order * point.mean_speed_hz
     truth = {
         "bearing": defect.bearing,
@@ -640,5 +652,6 @@ __all__ = [
     "SensorFault",
     "SimBearing",
     "SimMachine",
+    "ringing",
     "synthesize",
 ]
