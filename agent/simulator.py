@@ -296,21 +296,28 @@ class _Tone:
 def _add_tones(x, tones, t_s, dur_s, structure):
     truth = []
     for tone in tones:
-        f_inst = tone.f0_hz + (tone.f1_hz - tone.f0_hz) * t_s / dur_s
         f_mean = 0.5 * (tone.f0_hz + tone.f1_hz)
         if f_mean <= 0:
             continue
+        steady = abs(tone.f1_hz - tone.f0_hz) < 1e-6 * f_mean  # drift only: amplitude constant to 1 ppm
         if tone.vel_rms_mm_s:
+            f_inst = f_mean if steady else tone.f0_hz + (tone.f1_hz - tone.f0_hz) * t_s / dur_s
             amp = _vel_to_accel_pk(tone.vel_rms_mm_s, f_inst)
         else:
             amp = np.sqrt(2.0) * tone.accel_rms_ms2
         ph = 2 * np.pi * _phase_cycles(tone.f0_hz, tone.f1_hz, t_s, dur_s) + tone.phase_rad
         gain_mean = 1.0
         if structure is not None:
-            h = structure.response(f_inst)
-            amp = amp * np.abs(h)
-            ph = ph + np.angle(h)
-            gain_mean = float(abs(structure.response(f_mean)))
+            h_mean = complex(structure.response(f_mean))
+            gain_mean = abs(h_mean)
+            if abs(tone.f1_hz - tone.f0_hz) < 1e-3 * structure.damping * structure.freq_hz:
+                amp = amp * gain_mean  # the gain cannot change measurably within the capture
+                ph = ph + np.angle(h_mean)
+            else:  # a ramp: the gain follows the instantaneous frequency (smooth; 65 knots)
+                tk = np.linspace(0.0, dur_s, 65)
+                hk = structure.response(tone.f0_hz + (tone.f1_hz - tone.f0_hz) * tk / dur_s)
+                amp = amp * np.interp(t_s, tk, np.abs(hk))
+                ph = ph + np.interp(t_s, tk, np.unwrap(np.angle(hk)))
         x += amp * np.sin(ph)
         a_rms = (tone.accel_rms_ms2 or float(_vel_to_accel_pk(tone.vel_rms_mm_s, f_mean)) / np.sqrt(2.0))
         a_rms *= gain_mean

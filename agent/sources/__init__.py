@@ -11,7 +11,9 @@ import importlib
 
 from agent.sources.base import EndOfSource, Source
 
-SOURCES: dict[str, tuple[str, str]] = {}
+SOURCES: dict[str, tuple[str, str]] = {
+    "synthetic": ("agent.sources.synthetic", "SyntheticSource"),
+}
 
 
 def source_class(kind: str) -> type[Source]:
