@@ -237,7 +237,8 @@ class Scenario:
         ev.sort(key=lambda e: e["t_s"])
         for e in ev:
             e["day"] = e["t_s"] / 86400.0
-            e["utc"] = utc_text(self.start_utc_s + e["t_s"])
+            e["t_utc_s"] = self.start_utc_s + e["t_s"]
+            e["utc"] = utc_text(e["t_utc_s"])
         return ev
 
     def agent_config(self) -> dict:

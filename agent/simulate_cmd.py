@@ -1,7 +1,9 @@
 """``skidvib simulate SCENARIO -o DIR``: write a scenario's captures as recordings.
 
-Each capture becomes ``<tag>_<UTC start>.wav`` (float32 samples in m/s²,
-via scipy.io.wavfile) and a sidecar ``<same name>.json``::
+Each capture becomes ``<tag>_<UTC start>.wav`` (float32 samples in m/s²)
+and a sidecar ``<same name>.json`` (written by
+:func:`agent.recordings.write_wav_with_sidecar`, read back by
+:func:`agent.recordings.read_recording`)::
 
     {"format": "skidvib-recording", "version": 1, "fs_hz": 25600.0, "units": "m/s2",
      "channel": "...", "start_utc": "2026-03-02T06:00:00Z", "t0_utc_s": ..., "n_samples": ...,
@@ -18,26 +20,29 @@ from __future__ import annotations
 import argparse
 import json
 import os
-from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
-
-import numpy as np
-from scipy.io import wavfile
+from typing import TYPE_CHECKING
 
 from agent.errors import InputError
-from agent.scenario import Scenario, find_scenario, load_scenario, utc_text
+
+if TYPE_CHECKING:  # the command line imports this module to build its parser: keep it light
+    from agent.scenario import Scenario
 
 RECORDING_FORMAT = "skidvib-recording"
 RECORDING_VERSION = 1
 
 
 def recording_name(scenario: Scenario, t0_utc_s: float) -> str:
+    from agent.scenario import utc_text
+
     stamp = utc_text(t0_utc_s).replace("-", "").replace(":", "")
     safe_tag = "".join(c if c.isalnum() or c in "-_" else "-" for c in scenario.tag) or "sim"
     return f"{safe_tag}_{stamp}"
 
 
 def _json_default(obj):
+    import numpy as np
+
     if isinstance(obj, (np.floating, np.integer)):
         return obj.item()
     if isinstance(obj, np.ndarray):
@@ -49,17 +54,10 @@ def dumps(obj) -> str:
     return json.dumps(obj, indent=1, sort_keys=True, default=_json_default) + "\n"
 
 
-def write_recording(path_wav: Path, accel_ms2: np.ndarray, fs_hz: float, meta: dict) -> Path:
-    """Write one WAV (float32, m/s²) and its sidecar JSON; returns the sidecar path."""
-    if fs_hz != int(fs_hz):
-        raise InputError(f"{path_wav}: WAV needs an integer sample rate, got fs_hz={fs_hz}")
-    wavfile.write(path_wav, int(fs_hz), np.asarray(accel_ms2, dtype=np.float32))
-    side = path_wav.with_suffix(".json")
-    side.write_text(dumps(meta), encoding="utf-8")
-    return side
-
-
 def _write_capture(scenario: Scenario, i: int, out_dir: Path) -> str:
+    from agent.recordings import write_wav_with_sidecar
+    from agent.scenario import utc_text
+
     x, truth, t0 = scenario.capture(i)
     name = recording_name(scenario, t0)
     meta = {
@@ -77,7 +75,10 @@ def _write_capture(scenario: Scenario, i: int, out_dir: Path) -> str:
         "full_scale_ms2": truth["full_scale_ms2"],
         "ground_truth": truth,
     }
-    write_recording(out_dir / f"{name}.wav", x, scenario.fs_hz, meta)
+    if scenario.fs_hz != int(scenario.fs_hz):
+        raise InputError(f"scenario {scenario.name!r}: WAV needs an integer sample rate, got {scenario.fs_hz}")
+    # plain JSON types only (numpy scalars converted), then the shared WAV + sidecar writer
+    write_wav_with_sidecar(out_dir / f"{name}.wav", x, scenario.fs_hz, json.loads(dumps(meta)))
     return name
 
 
@@ -127,6 +128,10 @@ def _is_table_list(v) -> bool:
 def simulate(scenario: Scenario, out_dir: str | Path, *, limit: int | None = None, jobs: int = 1,
              progress=None) -> list[Path]:
     """Write the scenario's captures (all, or the first ``limit``) into ``out_dir``; returns the WAV paths."""
+    from concurrent.futures import ProcessPoolExecutor
+
+    from agent.scenario import utc_text
+
     out = Path(out_dir)
     try:
         out.mkdir(parents=True, exist_ok=True)
@@ -166,7 +171,7 @@ def simulate(scenario: Scenario, out_dir: str | Path, *, limit: int | None = Non
 
 def add_parser(sub) -> argparse.ArgumentParser:
     p = sub.add_parser("simulate", help="write a simulator scenario's captures as WAV + JSON recordings")
-    p.add_argument("scenario", help="scenario TOML file, or a name in replay/scenarios (e.g. tarnbrook-p201)")
+    p.add_argument("scenario", help="scenario TOML file, or a name in replay/scenarios (e.g. demo)")
     p.add_argument("-o", "--out", required=True, help="output folder")
     p.add_argument("--limit", type=int, default=None, help="write only the first N captures")
     p.add_argument("-j", "--jobs", type=int, default=min(4, os.cpu_count() or 1), help="parallel workers")
@@ -175,6 +180,8 @@ def add_parser(sub) -> argparse.ArgumentParser:
 
 
 def run(args) -> int:
+    from agent.scenario import find_scenario, load_scenario
+
     scenario = load_scenario(find_scenario(args.scenario))
     paths = simulate(scenario, args.out, limit=args.limit, jobs=max(1, args.jobs))
     print(f"{len(paths)} recordings of scenario '{scenario.name}' written to {args.out}")

@@ -20,7 +20,7 @@ from agent.sources import EndOfSource, source_class
 from agent.sources.synthetic import SyntheticSource, steady_scenario
 
 ROOT = Path(__file__).resolve().parents[1]
-DEMO = ROOT / "replay" / "scenarios" / "tarnbrook-p201.toml"
+DEMO = ROOT / "replay" / "scenarios" / "demo.toml"
 
 SMALL = """
 [scenario]
@@ -81,14 +81,14 @@ def test_demo_scenario_loads_and_tells_its_story():
     assert 300 <= s.n_captures <= 600
     assert s.capture_s == pytest.approx(2.56)
     whats = " | ".join(e["what"] for e in s.events())
-    for part in ("outer defect on bearing 'pump DE' begins", "stage 4", "cavitation begins",
+    for part in ("outer defect on bearing 'pump drive end' begins", "stage 4", "cavitation begins",
                  "sensor fault (intermittent) begins", "stopped", "ends (repaired)"):
         assert part in whats
-    assert {round(op.speed_hz * 60) for op in s.operations if op.running} == {1478, 1240}
+    assert {round(op.speed_hz * 60) for op in s.operations if op.running} == {1478, 1140}
     # a capture starting at a speed change lies inside the 60 s VFD ramp
     i = s.capture_times_s.index(2 * 86400.0)
     p = s.point_at(s.capture_times_s[i])
-    assert p.speed_hz - p.end_hz == pytest.approx((1478 - 1240) / 60 * s.capture_s / 60, rel=0.05)
+    assert p.speed_hz - p.end_hz == pytest.approx((1478 - 1140) / 60 * s.capture_s / 60, rel=0.05)
     # VFD: electrical frequency follows speed, n = 120·f·(1 − s)/P (REFERENCES §6)
     assert p.line_hz == pytest.approx(p.speed_hz * 2 / (1 - 0.013))
     assert not s.point_at(36.2 * 86400).running
@@ -126,9 +126,9 @@ def test_loader_rejects_bad_files(tmp_path):
         load_scenario(_write(tmp_path, "[scenario\n"))
     with pytest.raises(ConfigError, match="cannot read scenario file"):
         load_scenario(tmp_path / "missing.toml")
-    with pytest.raises(ConfigError, match="known scenarios: .*tarnbrook-p201"):
+    with pytest.raises(ConfigError, match="known scenarios: .*demo"):
         find_scenario("no-such-scenario")
-    assert find_scenario("tarnbrook-p201") == DEMO
+    assert find_scenario("demo") == DEMO
     text = SMALL.replace("levels = [[0.1, 0.1], [0.4, 1.0]]", "levels = [[0.4, 0.1], [0.1, 1.0]]")
     with pytest.raises(ConfigError, match="days must be in increasing order"):
         load_scenario(_write(tmp_path, text))

@@ -12,6 +12,7 @@ import importlib
 from agent.sources.base import EndOfSource, Source
 
 SOURCES: dict[str, tuple[str, str]] = {
+    "replay": ("agent.sources.replay", "ReplaySource"),
     "synthetic": ("agent.sources.synthetic", "SyntheticSource"),
 }
 

@@ -18,6 +18,8 @@ import datetime as dt
 import time
 from typing import Callable
 
+import numpy as np
+
 from agent.errors import SourceUnavailable
 from agent.model import Capture
 from agent.scenario import Scenario, find_scenario, load_scenario, parse_scenario
@@ -146,6 +148,9 @@ class SyntheticSource(Source):
             x, truth, t0_utc = s.capture(self._next)
             self._next += 1
         self.last_truth = truth
+        # the digitiser's word: float32, exactly what `skidvib simulate` stores in its WAV files,
+        # so the live simulator and a replay of its recordings give the same analysis
+        x = np.asarray(x, dtype=np.float32).astype(np.float64)
         cap = Capture(
             accel_ms2=x,
             fs_hz=s.fs_hz,
