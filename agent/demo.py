@@ -91,7 +91,9 @@ def _ensure_recordings(scenario_path: Path, rec_dir: Path, console: _Console, jo
     stamp.write_text(digest + "\n")
 
 
-def run_demo(out_dir: str | Path = "demo-out", *, jobs: int | None = None, stream=None, live: bool | None = None) -> int:
+def run_demo(out_dir: str | Path = "demo-out", *, jobs: int | None = None, stream=None, live: bool | None = None,
+             scenario: str = DEMO_SCENARIO, config: str | Path = DEMO_CONFIG) -> int:
+    """Simulate ``scenario`` (if not done already) and replay it with a live console view."""
     from agent.cli import SAFETY_NOTE
     from agent.config import load_config
     from agent.replay_cmd import change_line, load_events, run_replay, summary_lines
@@ -103,18 +105,19 @@ def run_demo(out_dir: str | Path = "demo-out", *, jobs: int | None = None, strea
     out = Path(out_dir)
     rec_dir = out / "recordings"
     rec_dir.mkdir(parents=True, exist_ok=True)
-    scenario_path = find_scenario(DEMO_SCENARIO)
+    scenario_path = find_scenario(scenario)
     scen = load_scenario(scenario_path)
     console.line(f"skidvib demo: {scen.title}")
     console.line("Everything here is simulated and invented. " + SAFETY_NOTE)
     console.line("")
     _ensure_recordings(scenario_path, rec_dir, console, jobs or min(4, os.cpu_count() or 1))
 
-    cfg = load_config(DEMO_CONFIG)
+    config = Path(config)
+    cfg = load_config(config)
     src = ReplaySource([rec_dir])
     src.open()
     total = len(src)
-    console.line(f"Replaying {total} captures through the monitoring pipeline with {DEMO_CONFIG.name} (fast) ...")
+    console.line(f"Replaying {total} captures through the monitoring pipeline with {config.name} (fast) ...")
     log_lines: list[str] = []
     jsonl = (out / "replay.jsonl").open("w", encoding="utf-8")
     latest = {"finding": "none yet"}
@@ -156,5 +159,6 @@ def run_demo(out_dir: str | Path = "demo-out", *, jobs: int | None = None, strea
     console.line(f"  scenario story (events, times)            {rec_dir / 'scenario.json'}")
     console.line(f"  replay log and summary                    {out / 'replay.log'}")
     console.line(f"  one JSON line per capture                 {out / 'replay.jsonl'}")
-    console.line(f"Replay them again with: skidvib replay {rec_dir} -c {DEMO_CONFIG.relative_to(ROOT)}")
+    shown = config.relative_to(ROOT) if config.is_relative_to(ROOT) else config
+    console.line(f"Replay them again with: skidvib replay {rec_dir} -c {shown}")
     return 0

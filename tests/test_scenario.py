@@ -3,8 +3,6 @@
 from __future__ import annotations
 
 import json
-import subprocess
-import sys
 import textwrap
 from pathlib import Path
 
@@ -195,13 +193,3 @@ def test_simulate_is_byte_identical_and_sidecars_are_complete(tmp_path):
     assert meta["ground_truth"]["tones"][0]["name"] == "1X"
     story = json.loads((tmp_path / "a" / "scenario.json").read_text())
     assert story["captures"] == 3 and story["events"][0]["utc"] == "2026-01-05T00:00:00Z"
-
-
-def test_simulate_command_line(tmp_path):
-    scen = _write(tmp_path, SMALL)
-    out = tmp_path / "rec"
-    r = subprocess.run([sys.executable, "-m", "agent.simulate_cmd", "simulate", str(scen), "-o", str(out),
-                        "--limit", "2", "-j", "1"], capture_output=True, text=True, cwd=ROOT)
-    assert r.returncode == 0, r.stderr
-    assert "2 recordings" in r.stdout
-    assert len(list(out.glob("*.wav"))) == 2
