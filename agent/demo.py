@@ -65,6 +65,23 @@ class _Console:
         self.stream.flush()
 
 
+def demo_signal(fs_hz: float, n: int, seed: int = 201):
+    """P-201 at 1476 r/min: 1X, 2X, vane pass (6X), twice line frequency, broadband noise (m/s²).
+
+    A plain, stationary test signal (for quick checks and tests); the full demo uses the simulator.
+    """
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    t = np.arange(n) / fs_hz
+    f1 = 1476.0 / 60.0
+    parts = [(f1, 1.6), (2 * f1, 0.7), (6 * f1, 0.9), (100.0, 0.25)]  # (Hz, mm/s r.m.s.)
+    acc = np.zeros(n)
+    for f, v_mm_s in parts:
+        acc += np.sqrt(2) * v_mm_s / 1000.0 * 2 * np.pi * f * np.sin(2 * np.pi * f * t + rng.uniform(0, 2 * np.pi))
+    return acc + rng.normal(0, 0.05, n)
+
+
 def _bar(done: int, total: int, width: int = 20) -> str:
     k = int(width * done / max(total, 1))
     return "[" + "#" * k + "." * (width - k) + "]"
