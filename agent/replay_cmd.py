@@ -1,10 +1,10 @@
 """``skidvib replay PATH... [-c CONFIG] [--speed N | --fast]``: recordings through the daemon's pipeline.
 
-Every capture goes through :func:`step`, the one place where a capture meets
-the pipeline; it carries the pipeline's state from one capture to the next
-(the daemon does the same), and time comes only from the captures (or the
-injected clock of the source), so the same recordings and config print the
-same lines, byte for byte.
+Every capture goes through :func:`agent.monitor.monitor_step`, the step the
+daemon runs, with the monitor state carried from one capture to the next as
+the daemon carries it; time comes only from the captures (or the injected
+clock of the source), so the same recordings and config print the same
+lines, byte for byte.
 
 What is printed is what the operator would have seen: a line for every
 change of state (with time and reason), findings as they appear and clear,
@@ -87,93 +87,73 @@ def _utc(t: float) -> str:
 # ───────────────────────────── the pipeline seam ─────────────────────────────
 
 
-def step(capture, cfg, carry: dict):
-    """Analyse one capture with the daemon's pipeline; ``carry`` holds state between captures."""
-    from agent.pipeline import analyse_capture
-
-    analysis = analyse_capture(capture, cfg, carry.get("plan"))
-    carry["plan"] = analysis.plan
-    return analysis
-
-
-def _speed_hz(analysis) -> float | None:
-    sp = getattr(analysis, "speed", None)
-    if sp is None and isinstance(getattr(analysis, "extras", None), dict):
-        sp = analysis.extras.get("speed")
-    if sp is None:
-        return None
-    if isinstance(sp, (int, float)):
-        return float(sp)
-    hz = getattr(sp, "speed_hz", None)
-    found = getattr(sp, "found", True)
-    return float(hz) if hz and found else None
-
-
-def view_of(analysis, seq: int, path: str, truth: dict | None) -> StepView:
-    """The operator's view of one analysis (state, reason, levels, findings)."""
-    o = analysis.overall
-    st = getattr(analysis, "state", None)
-    if st is not None:
-        state = getattr(st, "value", str(st))
-        reason = getattr(analysis, "reason", "") or ""
-    else:  # the pipeline has no state machine yet: show the ISO 20816-3 zone as the state
-        state = f"zone {o.iso_zone}"
-        reason = f"{o.vel_rms_mm_s:.2f} mm/s r.m.s. ({o.iso_band_hz[0]:g}-{o.iso_band_hz[1]:g} Hz)"
+def view_of(result, path: str, truth: dict | None) -> StepView:
+    """The operator's view of one monitoring step (:class:`agent.monitor.CaptureResult`)."""
+    f = result.features or {}
+    zone = (result.analysis.overall.iso_zone if result.analysis is not None else "-")
     return StepView(
-        seq=seq,
-        t0_utc_s=analysis.capture.t0_utc_s,
+        seq=result.seq,
+        t0_utc_s=result.t_utc_s,
         path=path,
-        state=state,
-        reason=reason,
-        vel_rms_mm_s=o.vel_rms_mm_s,
-        zone=o.iso_zone,
-        kurtosis=o.kurtosis,
-        crest_factor=o.crest_factor,
-        speed_hz=_speed_hz(analysis),
-        findings=tuple(analysis.findings),
+        state=result.state.value,
+        reason=result.reason,
+        vel_rms_mm_s=float(f.get("vel_rms_mm_s", float("nan"))),
+        zone=zone,
+        kurtosis=float(f.get("kurtosis", float("nan"))),
+        crest_factor=float(f.get("crest_factor", float("nan"))),
+        speed_hz=result.speed_hz,
+        findings=tuple(result.findings),
         truth=truth,
     )
 
 
 def run_replay(source, cfg, *, on_step: Callable[[StepView, list[dict]], None] | None = None,
                clock: Callable[[], float] = time.perf_counter) -> ReplayResult:
-    """Play ``source`` through the pipeline; call ``on_step(view, new_changes)`` after each capture."""
+    """Play ``source`` through :func:`agent.monitor.monitor_step`, the daemon's own step.
+
+    The monitor state is carried from capture to capture exactly as the
+    daemon carries it; time comes only from the captures. ``on_step(view,
+    new_changes)`` is called after each capture. ``clock`` only measures how
+    long the replay took.
+    """
+    from agent.monitor import initial_state, monitor_step
     from agent.sources import EndOfSource
 
     res = ReplayResult()
-    carry: dict = {}
-    prev_state: str | None = None
-    prev_codes: dict[str, object] = {}
+    ms = None
+    prev_codes: set[str] = set()
     t_start = clock()
     while True:
         try:
             caps = source.read(60.0)
         except EndOfSource:
             break
-        for cap in caps:
-            analysis = step(cap, cfg, carry)
-            meta = getattr(source, "last_meta", None) or {}
-            truth = meta.get("ground_truth") or getattr(source, "last_truth", None)
-            view = view_of(analysis, cap.seq, getattr(source, "last_path", "") or "", truth)
-            res.steps.append(view)
-            res.signal_s += cap.duration_s
-            new: list[dict] = []
-            if view.state != prev_state:
-                new.append({"t0_utc_s": view.t0_utc_s, "seq": view.seq, "kind": "state",
-                            "from": prev_state, "to": view.state, "reason": view.reason})
-                prev_state = view.state
-            codes = {f.code: f for f in view.findings}
-            for code, f in codes.items():
-                if code not in prev_codes:
-                    new.append({"t0_utc_s": view.t0_utc_s, "seq": view.seq, "kind": "finding", "code": code,
-                                "severity": f.severity.name.lower(), "title": f.title})
-            for code in prev_codes:
-                if code not in codes:
-                    new.append({"t0_utc_s": view.t0_utc_s, "seq": view.seq, "kind": "cleared", "code": code})
-            prev_codes = codes
-            res.changes.extend(new)
-            if on_step:
-                on_step(view, new)
+        if ms is None:
+            ms = initial_state(cfg, caps[0].t0_utc_s)
+        result, ms = monitor_step(ms, tuple(caps), cfg)
+        meta = getattr(source, "last_meta", None) or {}
+        truth = meta.get("ground_truth") or getattr(source, "last_truth", None)
+        view = view_of(result, getattr(source, "last_path", "") or "", truth)
+        res.steps.append(view)
+        res.signal_s += caps[0].duration_s
+        new: list[dict] = []
+        if len(res.steps) == 1:
+            new.append({"t0_utc_s": view.t0_utc_s, "seq": view.seq, "kind": "state", "from": None,
+                        "to": view.state, "reason": view.reason})
+        for ev in result.events:
+            if ev.get("event") == "state_change" and len(res.steps) > 1:
+                new.append({"t0_utc_s": ev["t_utc_s"], "seq": view.seq, "kind": "state",
+                            "from": ev["previous_state"], "to": ev["state"], "reason": ev["reason"]})
+            elif ev.get("event") == "new_finding":
+                new.append({"t0_utc_s": ev["t_utc_s"], "seq": view.seq, "kind": "finding", "code": ev["code"],
+                            "severity": ev["severity"], "title": ev["title"]})
+        codes = {f.code for f in result.findings}
+        for code in sorted(prev_codes - codes):
+            new.append({"t0_utc_s": view.t0_utc_s, "seq": view.seq, "kind": "cleared", "code": code})
+        prev_codes = codes
+        res.changes.extend(new)
+        if on_step:
+            on_step(view, new)
     res.wall_s = clock() - t_start
     res.skipped = list(getattr(source, "skipped", []))
     return res
@@ -192,11 +172,11 @@ def change_line(c: dict) -> str:
     return f"{t}  #{c['seq']:04d}  - cleared {c['code']}"
 
 
-def truth_comparison(res: ReplayResult, events: list[dict], horizon_s: float = 3 * 86400.0) -> list[str]:
+def truth_comparison(res: ReplayResult, events: list[dict], horizon_s: float = float("inf")) -> list[str]:
     """For every fault or sensor event: the first change the agent showed after it.
 
     A change counts for an event when it comes at or after the event and
-    before the next fault/sensor event (and within ``horizon_s``); speed
+    before the next fault/sensor event (and within ``horizon_s``, if given); speed
     changes and stops are the story's background, not events to detect.
     """
     lines = []
@@ -209,7 +189,9 @@ def truth_comparison(res: ReplayResult, events: list[dict], horizon_s: float = 3
                     and not (c["kind"] == "state" and c["from"] is None)), None)
         when = ev["utc"].replace("T", " ")[:-4] + "Z"
         if hit is None:
-            lines.append(f"  {when}  {ev['what']:<56}  nothing shown")
+            at = next((st for st in res.steps if st.t0_utc_s >= t_ev), None)
+            state = f" (state {at.state})" if at is not None else ""
+            lines.append(f"  {when}  {ev['what']:<56}  no change shown{state}")
         else:
             delay_h = (hit["t0_utc_s"] - t_ev) / 3600.0
             what = change_line(hit).split("  ", 2)[-1]
