@@ -149,3 +149,28 @@ def test_simulate_via_main_cli(tmp_path, small):
     assert len(list((tmp_path / "o").glob("*.wav"))) == 1
     r = run_cli("simulate", tmp_path / "missing.toml", "-o", tmp_path / "o")
     assert r.returncode == 2 and "no such scenario file" in r.stderr
+
+
+@pytest.mark.slow
+def test_daemon_path_gives_the_same_states_as_replay(small, tmp_path):
+    """The daemon (acquisition thread, queue, monitor step, store) fed the same recordings as replay."""
+    import dataclasses
+    import sqlite3
+
+    from agent.daemon import Daemon
+
+    _, _, rec = small
+    cfg = load_config(rec / "agent.toml")
+    cfg = dataclasses.replace(
+        cfg,
+        source=dataclasses.replace(cfg.source, interval_s=1.0),
+        store=dataclasses.replace(cfg.store, state_dir=str(tmp_path / "state")),
+    )
+    d = Daemon(cfg, source_factory=lambda c: ReplaySource([rec]), use_mqtt=False)
+    assert d.run() == 0
+    db = sqlite3.connect(tmp_path / "state" / "trend.sqlite")
+    daemon_rows = db.execute("SELECT t_utc_s, state FROM trend WHERE level = 0 ORDER BY t_utc_s").fetchall()
+    src = ReplaySource([rec])
+    src.open()
+    res = run_replay(src, cfg)
+    assert daemon_rows == [(s.t0_utc_s, s.state) for s in res.steps]
