@@ -193,3 +193,25 @@ def test_simulate_is_byte_identical_and_sidecars_are_complete(tmp_path):
     assert meta["ground_truth"]["tones"][0]["name"] == "1X"
     story = json.loads((tmp_path / "a" / "scenario.json").read_text())
     assert story["captures"] == 3 and story["events"][0]["utc"] == "2026-01-05T00:00:00Z"
+
+
+def test_synthetic_source_from_the_demo_config_runs_the_scenario_live():
+    """The daemon's way: source.kind = "synthetic" with the demo scenario, paced on an injected clock."""
+    import dataclasses
+
+    cfg = load_config(ROOT / "config" / "demo-skid.toml")
+    syn = dataclasses.replace(cfg.source.synthetic, time_scale=86400.0)  # one scenario day per second
+    cfg = dataclasses.replace(cfg, source=dataclasses.replace(cfg.source, synthetic=syn))
+    now = [1_900_000_000.0]
+
+    def sleep(dt_s):
+        now[0] += dt_s
+
+    src = source_class("synthetic").from_config(cfg, clock=lambda: now[0], sleep=sleep)
+    src.open()
+    assert src.scenario.name == "demo" and src.scenario.seed == cfg.source.synthetic.seed
+    now[0] += 27.0  # → scenario day 27: stage-3 outer-race defect on the pump drive end
+    (cap,) = src.read(10.0)
+    assert cap.t0_utc_s == 1_900_000_027.0
+    assert src.last_truth["bearings"][0]["stage"] == 3
+    assert src.last_truth["day"] == pytest.approx(27.0, abs=1e-3)

@@ -14,6 +14,7 @@ Two ways to run:
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import time
 from typing import Callable
@@ -100,6 +101,7 @@ class SyntheticSource(Source):
             from agent.config import resolve_path
 
             scen = load_scenario(find_scenario(str(resolve_path(cfg, src.synthetic.scenario))))
+            scen = dataclasses.replace(scen, seed=src.synthetic.seed)
         else:
             m = cfg.machine
             poles = m.poles or 4
@@ -116,7 +118,8 @@ class SyntheticSource(Source):
                                    poles=poles, rotor_bars=m.rotor_bars, vanes=m.vanes or m.blades,
                                    bearings=bearings, seed=src.synthetic.seed, channel=src.channel,
                                    interval_s=src.interval_s)
-        return cls(scen, paced=True, clock=clock, sleep=sleep, source_id=f"synthetic:{scen.name}")
+        return cls(scen, paced=True, time_scale=src.synthetic.time_scale, clock=clock, sleep=sleep,
+                   source_id=f"synthetic:{scen.name}")
 
     def open(self) -> None:
         if self.scenario.n_captures == 0 and not self.paced:
@@ -141,6 +144,7 @@ class SyntheticSource(Source):
             t_s = ((now - s.capture_s) - self._opened_at) * self.time_scale
             point, faults = s.point_at(t_s), s.faults_at(t_s)
             x, truth = synthesize(s.machine, point, faults, s.fs_hz, s.n_samples, t_s, seed=(s.seed, self._seq))
+            truth.update(scenario=s.name, index=self._seq, day=t_s / 86400.0)
             t0_utc = now - s.capture_s
         else:
             if self._next >= s.n_captures:
