@@ -82,6 +82,22 @@ def demo_signal(fs_hz: float, n: int, seed: int = 201):
     return acc + rng.normal(0, 0.05, n)
 
 
+def _sim_tag(truth: dict | None) -> str:
+    """What the simulator was doing, in a few words (the ground truth, for the audience)."""
+    if not truth:
+        return "-"
+    parts = []
+    for b in truth.get("bearings", []):
+        parts.append(f"{b['defect']} race st.{b['stage']}" if b["defect"] in ("outer", "inner")
+                     else f"{b['defect']} st.{b['stage']}")
+    if truth.get("cavitation_g"):
+        parts.append("cavitation")
+    parts += [f"sensor {s['kind']}" for s in truth.get("sensor", [])]
+    if not truth.get("running", True):
+        parts.append("stopped")
+    return ", ".join(parts) or "healthy"
+
+
 def _bar(done: int, total: int, width: int = 20) -> str:
     k = int(width * done / max(total, 1))
     return "[" + "#" * k + "." * (width - k) + "]"
@@ -158,7 +174,8 @@ def run_demo(out_dir: str | Path = "demo-out", *, jobs: int | None = None, strea
         when = view.to_json()["t0_utc"].replace("T", " ")[:-4] + "Z"
         n = view.seq + 1
         console.status(f"{_bar(n, total)} {n:3d}/{total}  {when}  {speed}  {view.state}  "
-                       f"{view.vel_rms_mm_s:5.2f} mm/s  latest finding: {latest['finding']}", n, total)
+                       f"{view.vel_rms_mm_s:5.2f} mm/s  latest finding: {latest['finding']}"
+                       f"  | sim: {_sim_tag(view.truth)}", n, total)
 
     try:
         res = run_replay(src, cfg, on_step=on_step)
