@@ -195,3 +195,16 @@ def test_analyze_command_finds_every_simulated_tone(tmp_path):
         near = [p for p in doc["peaks"] if abs(p["freq_hz"] - t["freq_hz"]) < 0.1 * bin_hz]
         assert near, (t["name"], t["freq_hz"])
         assert near[0]["amp"] == pytest.approx(t["vel_rms_mm_s"], rel=0.05), t["name"]
+
+
+def test_replay_source_reads_other_formats(tmp_path):
+    """Real data without sidecars: any format agent.recordings reads, with fs and units given."""
+    rng = np.random.default_rng(0)
+    for i in range(2):
+        np.save(tmp_path / f"rec{i}.npy", rng.standard_normal(4096) * 0.1)
+    src = ReplaySource([tmp_path], fs_hz=4096.0, units="g")
+    src.open()
+    a = src.read(1.0)[0]
+    b = src.read(1.0)[0]
+    assert (a.seq, b.seq) == (0, 1) and a.fs_hz == 4096.0
+    assert np.std(a.accel_ms2) == pytest.approx(0.1 * 9.80665, rel=0.05)  # g → m/s² (ISO 80000-3)
