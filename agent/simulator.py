@@ -389,7 +389,9 @@ def _bearing(defect: BearingDefect, machine: SimMachine, point: OperatingPoint, 
     # impact phase Φ(t) (in impacts) over [-pre, dur): invert for impact times
     t_all = (np.arange(-n_pre, n)) / fs_hz
     phi = f0 * t_all + 0.5 * slope * t_all * t_all
-    n_imp = int(np.ceil(phi[-1] - phi[0])) + 2
+    # enough intervals even when the random walk of the jitter runs slow (≥ 4σ margin)
+    span = phi[-1] - phi[0]
+    n_imp = int(np.ceil(span + 4 * defect.jitter_frac * (span + np.sqrt(span)))) + 3
     targets = phi[0] + rng.uniform(0, 1) + np.cumsum(1.0 + defect.jitter_frac * rng.standard_normal(n_imp))
     targets = targets[targets < phi[-1]]
     t_imp = np.interp(targets, phi, t_all)

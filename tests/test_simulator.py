@@ -279,3 +279,13 @@ def test_bad_arguments_are_rejected():
         synthesize(QUIET, POINT, Faults(), 0.0, N)
     with pytest.raises(ValueError, match="damping"):
         Resonance(100.0, 1.5)
+
+
+def test_impacts_cover_the_whole_capture_even_with_large_jitter():
+    d = BearingDefect("pump_de", "outer", 1.0, stage=1, jitter_frac=0.15)
+    for seed in range(5):
+        x, truth = synthesize(QUIET, POINT, Faults(bearings=(d,)), FS, N, seed=seed)
+        tail = x[-N // 16 :]  # the last 0.16 s holds ~11 impacts at ~70 Hz: never silent
+        assert np.abs(tail).max() > 0.3 * STANDARD_GRAVITY_MS2
+        expected = truth["bearings"][0]["defect_hz"] * N / FS
+        assert truth["bearings"][0]["impacts"] == pytest.approx(expected, rel=0.25)
