@@ -220,8 +220,9 @@ def summary_lines(res: ReplayResult, events: list[dict] | None = None) -> list[s
     with_truth = [s for s in res.steps if s.truth and s.speed_hz and s.truth.get("running")]
     if with_truth:
         err = [abs(s.speed_hz - s.truth["speed_hz"]) / s.truth["speed_hz"] for s in with_truth]
-        out.append(f"  running speed vs simulator truth: median error {100 * sorted(err)[len(err) // 2]:.2f} % "
-                   f"over {len(err)} captures")
+        err.sort()
+        out.append(f"  running speed vs simulator truth: median error {100 * err[len(err) // 2]:.3f} %, "
+                   f"largest {100 * err[-1]:.3f} % over {len(err)} running captures")
     for p, why in res.skipped:
         out.append(f"  skipped {p}: {why}")
     if events:
