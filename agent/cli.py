@@ -165,6 +165,11 @@ def build_parser() -> argparse.ArgumentParser:
                        "| ack | mode | feedback")
     remote.build_parser(s)
     s.set_defaults(func=remote.run)
+
+    from agent import replay_cmd, simulate_cmd
+
+    simulate_cmd.add_parser(sub)
+    replay_cmd.add_parser(sub)
     return p
 
 

@@ -51,7 +51,8 @@ class AssetConfig:
 @dataclass(frozen=True, slots=True)
 class SyntheticSourceConfig:
     scenario: str = _f("", help="scenario file for the simulator ('' = steady healthy machine)")
-    seed: int = _f(1, range=(0, 2**63 - 1))
+    seed: int = _f(1, range=(0, 2**63 - 1), help="seed of the simulator's random streams")
+    time_scale: float = _f(1.0, range=(0.001, 1e6), help="scenario seconds per real second when run live")
 
 
 @dataclass(frozen=True, slots=True)

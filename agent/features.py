@@ -81,11 +81,12 @@ def time_metrics(accel_ms2: np.ndarray) -> TimeMetrics:
         raise ValueError("need at least 2 samples")
     mean = float(x.mean())
     d = x - mean
-    m2 = float(np.mean(d * d))
+    d2 = d * d
+    m2 = float(np.mean(d2))
     rms = float(np.sqrt(m2))
     peak = float(np.max(np.abs(d)))
     p2p = float(d.max() - d.min())
-    kurt = float(np.mean(d**4) / m2**2) if m2 > 0 else 0.0
+    kurt = float(np.mean(d2 * d2) / m2**2) if m2 > 0 else 0.0  # d²·d², not d**4: far quicker
     crest = peak / rms if rms > 0 else 0.0
     return TimeMetrics(rms, peak, p2p, crest, kurt, mean)
 

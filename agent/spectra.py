@@ -58,8 +58,9 @@ class WindowFigures:
         return 1.0 / self.coherent_gain
 
 
+@functools.lru_cache(maxsize=64)
 def window_figures(name: str, n: int = 1024) -> WindowFigures:
-    """Coherent gain, ENBW (lines) and scalloping loss (dB) of a window."""
+    """Coherent gain, ENBW (lines) and scalloping loss (dB) of a window (memoised: plans are rebuilt often)."""
     w = make_window(name, n)
     cg = w.sum() / n
     enbw = n * np.sum(w**2) / w.sum() ** 2
@@ -67,6 +68,14 @@ def window_figures(name: str, n: int = 1024) -> WindowFigures:
     half_bin = abs(np.sum(w * np.exp(-1j * np.pi * k / n)))
     sl_db = -20.0 * np.log10(half_bin / w.sum())
     return WindowFigures(name, n, float(cg), float(enbw), float(sl_db))
+
+
+@functools.lru_cache(maxsize=64)
+def _readonly_window(name: str, n: int) -> np.ndarray:
+    """A shared read-only copy of a window (plans hold it read-only anyway)."""
+    w = make_window(name, n)
+    w.setflags(write=False)
+    return w
 
 
 @dataclass(frozen=True, slots=True)
@@ -116,8 +125,7 @@ class SpectrumPlan:
             nperseg = int(2 * lines)
             if nperseg > n_samples:
                 nperseg = 1 << int(np.floor(np.log2(n_samples)))
-        win = make_window(window, nperseg)
-        win.setflags(write=False)
+        win = _readonly_window(window, nperseg)
         f_hz = np.fft.rfftfreq(nperseg, 1.0 / fs_hz)
         f_hz.setflags(write=False)
         noverlap = int(round(overlap * nperseg))

@@ -12,8 +12,10 @@ import importlib
 from agent.sources.base import EndOfSource, Source
 
 SOURCES: dict[str, tuple[str, str]] = {
-    "soundcard": ("agent.sources.soundcard", "SoundCardSource"),
+    "replay": ("agent.sources.replay", "ReplaySource"),
     "serial": ("agent.sources.serial_adc", "SerialSource"),
+    "soundcard": ("agent.sources.soundcard", "SoundCardSource"),
+    "synthetic": ("agent.sources.synthetic", "SyntheticSource"),
 }
 
 

@@ -1,0 +1,321 @@
+"""``skidvib replay PATH... [-c CONFIG] [--speed N | --fast]``: recordings through the daemon's pipeline.
+
+Every capture goes through :func:`agent.monitor.monitor_step`, the step the
+daemon runs, with the monitor state carried from one capture to the next as
+the daemon carries it; time comes only from the captures (or the injected
+clock of the source), so the same recordings and config print the same
+lines, byte for byte.
+
+What is printed is what the operator would have seen: a line for every
+change of state (with time and reason), findings as they appear and clear,
+and a summary. With ``--json`` every capture is one JSON line instead.
+When the recordings carry a simulator ground truth (``skidvib simulate``),
+the summary also sets what was detected beside what the scenario did.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable
+
+SIGNAL_BENCH_TARGET = 50.0  # × real time of the signals (the issue's target, checked by a benchmark)
+
+
+@dataclass(slots=True)
+class StepView:
+    """What one capture showed: the operator's view plus the ground truth when there is one."""
+
+    seq: int
+    t0_utc_s: float
+    path: str
+    state: str
+    reason: str
+    vel_rms_mm_s: float
+    zone: str
+    kurtosis: float
+    crest_factor: float
+    speed_hz: float | None  # measured by the pipeline, when it measures speed
+    findings: tuple = ()
+    truth: dict | None = None
+
+    def to_json(self) -> dict:
+        return {
+            "seq": self.seq,
+            "t0_utc": _utc(self.t0_utc_s),
+            "file": Path(self.path).name,
+            "state": self.state,
+            "reason": self.reason,
+            "vel_rms_mm_s": round(self.vel_rms_mm_s, 4),
+            "zone": self.zone,
+            "kurtosis": round(self.kurtosis, 3),
+            "crest_factor": round(self.crest_factor, 3),
+            "speed_rpm": None if self.speed_hz is None else round(self.speed_hz * 60.0, 1),
+            "findings": [f.to_json() for f in self.findings],
+        }
+
+
+@dataclass(slots=True)
+class ReplayResult:
+    steps: list[StepView] = field(default_factory=list)
+    changes: list[dict] = field(default_factory=list)  # state changes and finding appear/clear
+    skipped: list[tuple[str, str]] = field(default_factory=list)
+    wall_s: float = 0.0
+    signal_s: float = 0.0
+
+    @property
+    def signal_factor(self) -> float:
+        return self.signal_s / self.wall_s if self.wall_s > 0 else float("inf")
+
+    @property
+    def timeline_s(self) -> float:
+        if len(self.steps) < 2:
+            return self.signal_s
+        return self.steps[-1].t0_utc_s - self.steps[0].t0_utc_s + self.signal_s / len(self.steps)
+
+
+def _utc(t: float) -> str:
+    from agent.scenario import utc_text
+
+    return utc_text(t)
+
+
+# ───────────────────────────── the pipeline seam ─────────────────────────────
+
+
+def view_of(result, path: str, truth: dict | None) -> StepView:
+    """The operator's view of one monitoring step (:class:`agent.monitor.CaptureResult`)."""
+    f = result.features or {}
+    zone = (result.analysis.overall.iso_zone if result.analysis is not None else "-")
+    return StepView(
+        seq=result.seq,
+        t0_utc_s=result.t_utc_s,
+        path=path,
+        state=result.state.value,
+        reason=result.reason,
+        vel_rms_mm_s=float(f.get("vel_rms_mm_s", float("nan"))),
+        zone=zone,
+        kurtosis=float(f.get("kurtosis", float("nan"))),
+        crest_factor=float(f.get("crest_factor", float("nan"))),
+        speed_hz=result.speed_hz,
+        findings=tuple(result.findings),
+        truth=truth,
+    )
+
+
+def run_replay(source, cfg, *, on_step: Callable[[StepView, list[dict]], None] | None = None,
+               clock: Callable[[], float] = time.perf_counter) -> ReplayResult:
+    """Play ``source`` through :func:`agent.monitor.monitor_step`, the daemon's own step.
+
+    The monitor state is carried from capture to capture exactly as the
+    daemon carries it; time comes only from the captures. ``on_step(view,
+    new_changes)`` is called after each capture. ``clock`` only measures how
+    long the replay took.
+    """
+    from agent.monitor import initial_state, monitor_step
+    from agent.sources import EndOfSource
+
+    res = ReplayResult()
+    ms = None
+    prev_codes: set[str] = set()
+    t_start = clock()
+    while True:
+        try:
+            caps = source.read(60.0)
+        except EndOfSource:
+            break
+        if ms is None:
+            ms = initial_state(cfg, caps[0].t0_utc_s)
+        result, ms = monitor_step(ms, tuple(caps), cfg)
+        meta = getattr(source, "last_meta", None) or {}
+        truth = meta.get("ground_truth") or getattr(source, "last_truth", None)
+        view = view_of(result, getattr(source, "last_path", "") or "", truth)
+        res.steps.append(view)
+        res.signal_s += caps[0].duration_s
+        new: list[dict] = []
+        if len(res.steps) == 1:
+            new.append({"t0_utc_s": view.t0_utc_s, "seq": view.seq, "kind": "state", "from": None,
+                        "to": view.state, "reason": view.reason})
+        for ev in result.events:
+            if ev.get("event") == "state_change" and len(res.steps) > 1:
+                new.append({"t0_utc_s": ev["t_utc_s"], "seq": view.seq, "kind": "state",
+                            "from": ev["previous_state"], "to": ev["state"], "reason": ev["reason"]})
+            elif ev.get("event") == "new_finding":
+                new.append({"t0_utc_s": ev["t_utc_s"], "seq": view.seq, "kind": "finding", "code": ev["code"],
+                            "severity": ev["severity"], "title": ev["title"]})
+        codes = {f.code for f in result.findings}
+        for code in sorted(prev_codes - codes):
+            new.append({"t0_utc_s": view.t0_utc_s, "seq": view.seq, "kind": "cleared", "code": code})
+        prev_codes = codes
+        res.changes.extend(new)
+        if on_step:
+            on_step(view, new)
+    res.wall_s = clock() - t_start
+    res.skipped = list(getattr(source, "skipped", []))
+    return res
+
+
+# ───────────────────────────── text ─────────────────────────────
+
+
+def change_line(c: dict) -> str:
+    t = _utc(c["t0_utc_s"]).replace("T", " ")[:-4] + "Z"
+    if c["kind"] == "state":
+        arrow = f"{c['from']} -> {c['to']}" if c["from"] else f"starts {c['to']}"
+        return f"{t}  #{c['seq']:04d}  state {arrow}: {c['reason']}"
+    if c["kind"] == "finding":
+        return f"{t}  #{c['seq']:04d}  + [{c['severity']}] {c['code']}: {c['title']}"
+    return f"{t}  #{c['seq']:04d}  - cleared {c['code']}"
+
+
+def truth_comparison(res: ReplayResult, events: list[dict], horizon_s: float = float("inf")) -> list[str]:
+    """For every fault or sensor event: the first change the agent showed after it.
+
+    A change counts for an event when it comes at or after the event and
+    before the next fault/sensor event (and within ``horizon_s``, if given); speed
+    changes and stops are the story's background, not events to detect.
+    """
+    lines = []
+    story = [ev for ev in events if ev.get("kind") != "operation"]
+    for k, ev in enumerate(story):
+        t_ev = ev["t0_utc_s"]
+        later = [e["t0_utc_s"] for e in story[k + 1 :] if e["t0_utc_s"] > t_ev]
+        t_end = min([t_ev + horizon_s] + later[:1])
+        hit = next((c for c in res.changes if t_ev <= c["t0_utc_s"] < t_end
+                    and not (c["kind"] == "state" and c["from"] is None)), None)
+        when = ev["utc"].replace("T", " ")[:-4] + "Z"
+        if hit is None:
+            at = next((st for st in res.steps if st.t0_utc_s >= t_ev), None)
+            state = f" (state {at.state})" if at is not None else ""
+            lines.append(f"  {when}  {ev['what']:<56}  no change shown{state}")
+        else:
+            delay_h = (hit["t0_utc_s"] - t_ev) / 3600.0
+            what = change_line(hit).split("  ", 2)[-1]
+            lines.append(f"  {when}  {ev['what']:<56}  after {delay_h:5.1f} h: {what}")
+    return lines
+
+
+def summary_lines(res: ReplayResult, events: list[dict] | None = None) -> list[str]:
+    n = len(res.steps)
+    if n == 0:
+        return ["No captures replayed."] + [f"  skipped {p}: {why}" for p, why in res.skipped]
+    first, last = res.steps[0], res.steps[-1]
+    out = [
+        f"Replayed {n} captures, {_utc(first.t0_utc_s)} ... {_utc(last.t0_utc_s)}"
+        + (f", {len(res.skipped)} skipped" if res.skipped else ""),
+        f"  {res.wall_s:.1f} s wall: {res.signal_factor:.0f}x real time of the signals ({res.signal_s:.0f} s of samples), "
+        f"{res.timeline_s / max(res.wall_s, 1e-9):.0f}x the recordings' timeline",
+    ]
+    counts: dict[str, int] = {}
+    for s in res.steps:
+        counts[s.state] = counts.get(s.state, 0) + 1
+    out.append("  states: " + ", ".join(f"{k} {v}" for k, v in sorted(counts.items())))
+    n_state = sum(1 for c in res.changes if c["kind"] == "state") - 1
+    n_find = sum(1 for c in res.changes if c["kind"] == "finding")
+    out.append(f"  {n_state} state changes, {n_find} findings raised")
+    with_truth = [s for s in res.steps if s.truth and s.speed_hz and s.truth.get("running")]
+    if with_truth:
+        err = [abs(s.speed_hz - s.truth["speed_hz"]) / s.truth["speed_hz"] for s in with_truth]
+        err.sort()
+        out.append(f"  running speed vs simulator truth: median error {100 * err[len(err) // 2]:.3f} %, "
+                   f"largest {100 * err[-1]:.3f} % over {len(err)} running captures")
+    for p, why in res.skipped:
+        out.append(f"  skipped {p}: {why}")
+    if events:
+        out.append("")
+        out.append("Scenario events vs what the agent showed:")
+        out.extend(truth_comparison(res, events))
+    return out
+
+
+def load_events(paths) -> list[dict] | None:
+    """Scenario events from a ``scenario.json`` beside the recordings (written by ``skidvib simulate``)."""
+    for raw in paths:
+        p = Path(raw)
+        story = (p if p.is_dir() else p.parent) / "scenario.json"
+        if story.is_file():
+            try:
+                data = json.loads(story.read_text(encoding="utf-8"))
+                return [{**e, "t0_utc_s": float(e["t_utc_s"])} for e in data["events"]]
+            except (OSError, ValueError, KeyError, TypeError):
+                return None
+    return None
+
+
+# ───────────────────────────── command ─────────────────────────────
+
+
+def add_parser(sub) -> argparse.ArgumentParser:
+    p = sub.add_parser("replay", help="run recordings through the monitoring pipeline, faster than real time")
+    p.add_argument("paths", nargs="+", metavar="PATH", help="recordings or folders of recordings (played in name order)")
+    p.add_argument("-c", "--config", help="config file (default: agent.toml beside the recordings, else built-in)")
+    pace = p.add_mutually_exclusive_group()
+    pace.add_argument("--speed", type=float, help="play the recordings' timeline N times faster than real time")
+    pace.add_argument("--fast", action="store_true", help="no waiting at all (the default)")
+    p.add_argument("--json", action="store_true", help="one JSON line per capture, then a JSON summary")
+    p.add_argument("--fs", type=float, help="sample rate, for files that do not say")
+    p.add_argument("--units", choices=("g", "m/s2", "mm/s", "V"), help="units, for files that do not say")
+    p.set_defaults(func=run)
+    return p
+
+
+def _config_for(args):
+    from agent.config import default_config, load_config
+
+    if args.config:
+        return load_config(args.config), args.config
+    for raw in args.paths:
+        p = Path(raw)
+        cand = (p if p.is_dir() else p.parent) / "agent.toml"
+        if cand.is_file():
+            return load_config(cand), str(cand)
+    return default_config(), "built-in defaults"
+
+
+def run(args) -> int:
+    from agent.errors import InputError, SourceUnavailable
+    from agent.sources.replay import ReplaySource
+
+    if args.speed is not None and not args.speed > 0:
+        raise InputError(f"--speed must be > 0, got {args.speed}")
+    cfg, cfg_name = _config_for(args)
+    src = ReplaySource(args.paths, speed=args.speed, fs_hz=args.fs, units=args.units)
+    try:
+        src.open()
+    except SourceUnavailable as exc:
+        raise InputError(str(exc)) from exc
+    out = sys.stdout
+    if args.json:
+        def on_step(view, new):
+            out.write(json.dumps(view.to_json(), sort_keys=True) + "\n")
+    else:
+        print(f"Replaying {len(src)} recordings with config {cfg_name}", file=out)
+
+        def on_step(view, new):
+            for c in new:
+                print(change_line(c), file=out)
+    res = run_replay(src, cfg, on_step=on_step)
+    events = load_events(args.paths)
+    if args.json:
+        out.write(json.dumps({"summary": {"captures": len(res.steps), "changes": res.changes,
+                                          "skipped": [list(s) for s in res.skipped]}}, sort_keys=True) + "\n")
+    else:
+        print("", file=out)
+        print("\n".join(summary_lines(res, events)), file=out)
+    return 0 if res.steps else 3
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(prog="skidvib")
+    sub = parser.add_subparsers(dest="command", required=True)
+    add_parser(sub)
+    args = parser.parse_args(argv)
+    return args.func(args)
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,210 @@
+"""Replay: source, command, same results as the live simulator source, and the demo."""
+
+from __future__ import annotations
+
+import io
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from agent.config import load_config
+from agent.errors import SourceUnavailable
+from agent.replay_cmd import run_replay, summary_lines
+from agent.scenario import load_scenario
+from agent.simulate_cmd import simulate
+from agent.sources import EndOfSource, source_class
+from agent.sources.replay import ReplaySource
+from agent.sources.synthetic import SyntheticSource
+
+from tests.test_scenario import SMALL
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+@pytest.fixture(scope="module")
+def small(tmp_path_factory):
+    d = tmp_path_factory.mktemp("small")
+    path = d / "small.toml"
+    path.write_text(SMALL, encoding="utf-8")
+    scen = load_scenario(path)
+    simulate(scen, d / "rec")
+    return scen, path, d / "rec"
+
+
+def run_cli(*args):
+    r = subprocess.run([sys.executable, "-m", "agent", *map(str, args)], capture_output=True, text=True, cwd=ROOT)
+    return r
+
+
+def test_replay_source_plays_folder_in_time_order(small):
+    scen, _, rec = small
+    assert source_class("replay") is ReplaySource
+    src = ReplaySource([rec])
+    src.open()
+    assert len(src) == scen.n_captures
+    t0s = []
+    while True:
+        try:
+            (cap,) = src.read(1.0)
+        except EndOfSource:
+            break
+        t0s.append(cap.t0_utc_s)
+        assert cap.source_id == "replay" and cap.full_scale_ms2 == pytest.approx(50 * 9.80665)
+        assert src.last_meta["ground_truth"]["index"] == cap.seq
+    assert t0s == [scen.start_utc_s + t for t in scen.capture_times_s]
+
+
+def test_replay_source_skips_bad_files_and_paces_on_the_injected_clock(small, tmp_path):
+    _, _, rec = small
+    files = sorted(rec.glob("*.wav"))[:3]
+    bad = tmp_path / "broken.wav"
+    bad.write_bytes(b"RIFF0000WAVEjunk")
+    now = [100.0]
+    waits = []
+
+    def sleep(s):
+        waits.append(round(s, 6))
+        now[0] += s
+
+    src = ReplaySource([files[0], bad, files[1], files[2]], speed=3600.0, monotonic=lambda: now[0], sleep=sleep)
+    src.open()
+    caps = [src.read(1.0)[0] for _ in range(3)]
+    with pytest.raises(EndOfSource):
+        src.read(1.0)
+    assert [c.seq for c in caps] == [0, 1, 2]
+    assert src.skipped and src.skipped[0][0] == str(bad)
+    # captures 2 h apart at 3600× real time: 2 s waits on the injected clock
+    assert waits == [2.0, 2.0]
+    with pytest.raises(SourceUnavailable, match="no such file"):
+        ReplaySource([tmp_path / "nothing-here"]).open()
+
+
+def test_replay_of_recordings_equals_the_live_simulator_path(small):
+    """The same scenario through the simulator source and through its recordings: same views."""
+    scen, _, rec = small
+    cfg = load_config(rec / "agent.toml")
+    live = run_replay(SyntheticSource(scen).__enter__(), cfg)
+    played = ReplaySource([rec])
+    played.open()
+    rep = run_replay(played, cfg)
+    a = [s.to_json() | {"file": ""} for s in live.steps]
+    b = [s.to_json() | {"file": ""} for s in rep.steps]
+    assert a == b
+    assert live.changes == rep.changes
+    assert any(c["kind"] == "state" for c in rep.changes)
+
+
+def test_replay_command_is_deterministic_and_prints_a_summary(small):
+    _, _, rec = small
+    r1 = run_cli("replay", rec, "--json")
+    r2 = run_cli("replay", rec, "--json")
+    assert r1.returncode == 0, r1.stderr
+    assert r1.stdout == r2.stdout
+    lines = [json.loads(x) for x in r1.stdout.splitlines()]
+    assert len(lines) == 8 + 1 and "summary" in lines[-1]
+    assert lines[0]["t0_utc"] == "2026-01-05T00:00:00Z" and lines[0]["zone"] in "ABCD"
+    human = run_cli("replay", rec, "-c", rec / "agent.toml")
+    assert human.returncode == 0, human.stderr
+    assert "Replayed 8 captures" in human.stdout
+    assert "Scenario events vs what the agent showed" in human.stdout
+    assert "inner defect on bearing 'b1' begins" in human.stdout
+    bad = run_cli("replay", rec / "nope")
+    assert bad.returncode == 3 and "no such file" in bad.stderr
+
+
+def test_replay_summary_reports_speed_factors():
+    from agent.replay_cmd import ReplayResult, StepView
+
+    res = ReplayResult(steps=[StepView(i, 1000.0 + 3600 * i, "", "zone A", "", 1.0, "A", 3.0, 3.0, None)
+                              for i in range(4)], wall_s=2.0, signal_s=4 * 2.56)
+    text = "\n".join(summary_lines(res))
+    assert "5x real time of the signals" in text  # 10.24 s of samples in 2 s
+    assert "zone A 4" in text
+
+
+def test_demo_runs_on_a_small_scenario(small, tmp_path):
+    from agent.demo import run_demo
+
+    _, path, _ = small
+    buf = io.StringIO()
+    assert run_demo(tmp_path / "out", scenario=str(path), stream=buf, live=False, jobs=1) == 0
+    text = buf.getvalue()
+    assert "Replaying 8 captures" in text and "Outputs:" in text
+    assert (tmp_path / "out" / "replay.log").read_text().count("Replayed 8 captures") == 1
+    assert len((tmp_path / "out" / "replay.jsonl").read_text().splitlines()) == 8
+    buf2 = io.StringIO()
+    run_demo(tmp_path / "out", scenario=str(path), stream=buf2, live=True, jobs=1)
+    assert "Reusing the recordings" in buf2.getvalue()
+    assert "\r[" in buf2.getvalue()  # the live status line
+
+
+def test_simulate_via_main_cli(tmp_path, small):
+    _, path, _ = small
+    r = run_cli("simulate", path, "-o", tmp_path / "o", "--limit", "1", "-j", "1")
+    assert r.returncode == 0, r.stderr
+    assert len(list((tmp_path / "o").glob("*.wav"))) == 1
+    r = run_cli("simulate", tmp_path / "missing.toml", "-o", tmp_path / "o")
+    assert r.returncode == 2 and "no such scenario file" in r.stderr
+
+
+@pytest.mark.slow
+def test_daemon_path_gives_the_same_states_as_replay(small, tmp_path):
+    """The daemon (acquisition thread, queue, monitor step, store) fed the same recordings as replay."""
+    import dataclasses
+    import sqlite3
+
+    from agent.daemon import Daemon
+
+    _, _, rec = small
+    cfg = load_config(rec / "agent.toml")
+    cfg = dataclasses.replace(
+        cfg,
+        source=dataclasses.replace(cfg.source, interval_s=1.0),
+        store=dataclasses.replace(cfg.store, state_dir=str(tmp_path / "state")),
+    )
+    d = Daemon(cfg, source_factory=lambda c: ReplaySource([rec]), use_mqtt=False)
+    assert d.run() == 0
+    db = sqlite3.connect(tmp_path / "state" / "trend.sqlite")
+    daemon_rows = db.execute("SELECT t_utc_s, state FROM trend WHERE level = 0 ORDER BY t_utc_s").fetchall()
+    src = ReplaySource([rec])
+    src.open()
+    res = run_replay(src, cfg)
+    assert daemon_rows == [(s.t0_utc_s, s.state) for s in res.steps]
+
+
+def test_analyze_command_finds_every_simulated_tone(tmp_path):
+    """Round trip through `skidvib analyze`: each simulated tone is a peak at its frequency, ±5 % amplitude."""
+    from agent.recordings import write_wav_with_sidecar
+    from agent.simulator import Faults, OperatingPoint, SimMachine, synthesize
+
+    m = SimMachine(residual_1x_mm_s=0.0, floor_mm_s=0.02, noise_g=0.001, rotor_bar_g=0.02, line_mm_s=(0.0, 0.4))
+    x, truth = synthesize(m, OperatingPoint(True, 24.6, None, 50.0), Faults(misalignment_mm_s=2.0), 25600.0, 65536,
+                          seed=1)
+    wav = tmp_path / "sim.wav"
+    write_wav_with_sidecar(wav, x, 25600.0, {"channel": "pump DE"})
+    r = run_cli("analyze", wav, "-c", ROOT / "config" / "demo-skid.toml", "--json")
+    assert r.returncode == 0, r.stderr
+    doc = json.loads(r.stdout)
+    bin_hz = doc["spectrum"]["bin_width_hz"]
+    assert len(truth["tones"]) == 9
+    for t in truth["tones"]:
+        near = [p for p in doc["peaks"] if abs(p["freq_hz"] - t["freq_hz"]) < 0.1 * bin_hz]
+        assert near, (t["name"], t["freq_hz"])
+        assert near[0]["amp"] == pytest.approx(t["vel_rms_mm_s"], rel=0.05), t["name"]
+
+
+def test_replay_source_reads_other_formats(tmp_path):
+    """Real data without sidecars: any format agent.recordings reads, with fs and units given."""
+    rng = np.random.default_rng(0)
+    for i in range(2):
+        np.save(tmp_path / f"rec{i}.npy", rng.standard_normal(4096) * 0.1)
+    src = ReplaySource([tmp_path], fs_hz=4096.0, units="g")
+    src.open()
+    a = src.read(1.0)[0]
+    b = src.read(1.0)[0]
+    assert (a.seq, b.seq) == (0, 1) and a.fs_hz == 4096.0
+    assert np.std(a.accel_ms2) == pytest.approx(0.1 * 9.80665, rel=0.05)  # g → m/s² (ISO 80000-3)
