@@ -429,7 +429,7 @@ class Daemon:
         snapshot_id = ""
         if self.store is not None:
             try:
-                if result.analysis is not None:
+                if result.seq >= 0:  # every capture, a sensor-fault one too (its levels are NaN)
                     self.store.add_trend(result.t_utc_s, result.state.value, result.speed_hz, result.features)
             except StoreError as exc:
                 self._count_store_error(exc)
