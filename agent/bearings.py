@@ -235,16 +235,19 @@ def _score_defect(
     ftf_order: float,
     st: BearingSettings,
     view: str,
+    sigma_scale: float = 1.0,
 ) -> DefectScore:
     """Score one defect family in one height spectrum ``h`` (lines count above ``thr`` dB).
 
-    Credits are in units of the sharp-line threshold (``st.min_height_db``),
-    so a smoothed spectrum with its lower threshold scores on the same scale.
+    Credits are dB above ``thr`` times ``sigma_scale``: a smoothed spectrum
+    fluctuates √(M/1.5) times less than single lines, so a dB of it counts
+    that many times more (same credit for the same number of standard
+    deviations).
     """
     df = ses.bin_width_hz
     fmax = min(float(ses.f_hz[-1]), 0.8 * (ses.band_hz[1] - ses.band_hz[0]))
     label = _LABEL[defect]
-    scale = st.min_height_db / thr
+    scale = sigma_scale
     f0, harms = _family(h, df, order * speed_hz, st.slip_tol, st.n_harmonics, fmax, thr)
     score = 0.0
     rank = 0.0
@@ -273,7 +276,7 @@ def _score_defect(
                 )
     # a lone line is weak evidence: at least two family members or one very strong fundamental
     h1 = harms[0][2] if harms else -np.inf
-    if n_h < 2 and not (n_h == 1 and scale * (h1 - thr) >= 10.0):
+    if n_h < 2 and not (n_h == 1 and scale * (h1 - thr) >= 8.0):
         score *= 0.3
     if defect == "cage":
         # the FTF region of the envelope holds slip, line-frequency and looseness
@@ -342,13 +345,16 @@ def score_bearing(
             for defect in names:
                 order = defects[defect]
                 m = int(round(settings.slip_tol * order * speed_hz / df)) | 1
-                cands = [(sharp, settings.min_height_db)]
+                cands = [(sharp, settings.min_height_db, 1.0)]
                 if m >= 3:
                     w_s = min(max(width, 10 * m * df), 2 * speed_hz)
                     smooth = np.where(mask, 0.0, _height_db(ses, w_s, smooth_lines=m))
-                    cands.append((smooth, 10 * math.log10(1 + 8.0 / math.sqrt(m / 1.5))))
-                for h, thr in cands:
-                    sc = _score_defect(spec.name, defect, order, ses, h, thr, speed_hz, o.ftf, settings, view)
+                    m_eff = math.sqrt(m / 1.5)
+                    cands.append((smooth, 10 * math.log10(1 + 8.0 / m_eff), m_eff))
+                for h, thr, sig in cands:
+                    sc = _score_defect(
+                        spec.name, defect, order, ses, h, thr, speed_hz, o.ftf, settings, view, sig
+                    )
                     if sc.defect not in best or sc.score > best[sc.defect].score:
                         best[sc.defect] = sc
         return best
