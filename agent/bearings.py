@@ -62,6 +62,14 @@ FMAX_FRACTION = 0.45
 _LABEL = {"outer": "BPFO", "inner": "BPFI", "ball": "2xBSF", "ball1": "BSF", "cage": "FTF"}
 
 
+def _harmonic_label(defect: str, k: int) -> str:
+    """'BPFO', '3xBPFO'; the 2×BSF family is labelled in BSF multiples ('4xBSF')."""
+    if defect == "ball":
+        return f"{2 * k}xBSF"
+    base = _LABEL[defect]
+    return f"{k}x{base}" if k > 1 else base
+
+
 @dataclass(frozen=True, slots=True)
 class BearingSpec:
     """One bearing to watch: its name and defect orders (multiples of shaft speed)."""
@@ -138,13 +146,12 @@ def _height_db(ses: EnvelopeSpectrum, width_hz: float, smooth_lines: int = 1) ->
     la = np.log10(np.maximum(a, tiny))
     # block medians every w/2 lines, interpolated: the median floor at a fraction of the cost
     step = max(1, w // 2)
+    half = w // 2
     n = la.size
-    centres, meds = [], []
-    for s in range(0, n, step):
-        lo, hi = max(0, s - w // 2), min(n, s + w // 2 + 1)
-        centres.append(s)
-        meds.append(np.median(la[lo:hi]))
-    floor = np.interp(np.arange(n), centres, meds)
+    padded = np.pad(la, half, mode="edge")
+    centres = np.arange(0, n, step)
+    win = np.lib.stride_tricks.sliding_window_view(padded, 2 * half + 1)[centres]
+    floor = np.interp(np.arange(n), centres, np.median(win, axis=1))
     h = 20.0 * (la - floor)
     h[0] = 0.0
     return h
@@ -259,7 +266,7 @@ def _score_defect(
             score += min(scale * (hk - thr), 15.0)
             rank += scale * (hk - thr) / k
             evidence.append(
-                {"freq_hz": round(f, 3), "label": f"{k}x{label}" if k > 1 else label,
+                {"freq_hz": round(f, 3), "label": _harmonic_label(defect, k),
                  "height_db": round(hk, 1), "spectrum": f"envelope ({view})"}
             )
     n_sb = 0
@@ -337,18 +344,26 @@ def score_bearing(
         view = f"{ses.band_source} {ses.band_hz[0]:.0f}-{ses.band_hz[1]:.0f} Hz"
         prepared.append((ses, sync, view, width))
 
+    cache: dict[tuple[int, int], np.ndarray] = {}
+
+    def heights(i: int, m: int) -> np.ndarray:
+        if (i, m) not in cache:
+            ses, _, _, width = prepared[i]
+            w = width if m == 1 else min(max(width, 10 * m * ses.bin_width_hz), 2 * speed_hz)
+            cache[(i, m)] = _height_db(ses, w, smooth_lines=m)
+        return cache[(i, m)]
+
     def run(names, masks):
         best: dict[str, DefectScore] = {}
-        for (ses, sync, view, width), mask in zip(prepared, masks):
+        for i, ((ses, sync, view, width), mask) in enumerate(zip(prepared, masks)):
             df = ses.bin_width_hz
-            sharp = np.where(mask, 0.0, _height_db(ses, width))
+            sharp = np.where(mask, 0.0, heights(i, 1))
             for defect in names:
                 order = defects[defect]
                 m = int(round(settings.slip_tol * order * speed_hz / df)) | 1
                 cands = [(sharp, settings.min_height_db, 1.0)]
                 if m >= 3:
-                    w_s = min(max(width, 10 * m * df), 2 * speed_hz)
-                    smooth = np.where(mask, 0.0, _height_db(ses, w_s, smooth_lines=m))
+                    smooth = np.where(mask, 0.0, heights(i, m))
                     m_eff = math.sqrt(m / 1.5)
                     cands.append((smooth, 10 * math.log10(1 + 8.0 / m_eff), m_eff))
                 for h, thr, sig in cands:
@@ -414,6 +429,8 @@ def _spectrum_stage(
     logp = 10 * np.log10(np.maximum(vel.power, 1e-300))
     h = logp - 10 * np.log10(np.maximum(noise_floor(vel), 1e-300))
     df = vel.bin_width_hz
+    # shaft harmonics are not bearing tones, even where they fall on one
+    h = np.where(_sync_mask(vel.f_hz, speed_hz, settings.sync_tol, df), 0.0, h)
     f0 = score.fundamental_hz
     found, ev = 0, []
     label = {"outer": "BPFO", "inner": "BPFI", "ball": "2xBSF", "cage": "FTF"}[score.defect]
@@ -423,7 +440,7 @@ def _spectrum_stage(
         i, hk = _line_near(h, df, k * f0, 1 + int(round(0.005 * k * f0 / df)))
         if hk >= settings.min_height_db:
             found += 1
-            ev.append({"freq_hz": round(i * df, 2), "label": f"{k}x{label}" if k > 1 else label,
+            ev.append({"freq_hz": round(i * df, 2), "label": _harmonic_label(score.defect, k),
                        "height_db": round(hk, 1), "spectrum": "velocity"})
     if found == 0:
         return 1, ev
