@@ -20,17 +20,34 @@ speed are skipped: bearing tones are not synchronous, and 1X harmonics in the
 envelope (looseness, rubs, electrical modulation) would otherwise pose as a
 defect family.
 
-Scores, thresholds and the stage model are common practice, stated here:
+Two envelope views are searched (:func:`envelope_views`): the band chosen by
+the fast kurtogram and the whole band above ``fmin``, both after cepstrum
+pre-whitening; the stronger evidence wins. Each view is searched line by
+line (sharp tones) and after averaging the power over ``slip_tol`` of the
+defect frequency, which gathers tones smeared by random slip — typical of
+rolling-element defects — into one hump.
+
+Scores, thresholds and the stage model are our choices (common practice
+where so marked), stated here:
 
 * a harmonic counts when it stands ``min_height_db`` (8 dB) above the floor;
-  for the SES of Gaussian noise the line magnitude is Rayleigh-distributed,
-  so a line stands 8 dB above the median with probability 2^-(10^0.8)² ≈
-  1 % (computed);
-* family score = Σ over harmonics of the height above 8 dB (each capped at
-  15 dB), plus half the same for sidebands; confidence = 1 − exp(−score/20);
-* stage 1: defect only in the envelope; 2: a defect tone also in the
-  velocity/acceleration spectrum; 3: harmonics and sidebands there as well;
-  4: broadband floor raised (needs a baseline, passed as ``floor_rise_db``).
+  in the SES of Gaussian noise a line's magnitude is Rayleigh-distributed,
+  so it stands c = 8 dB above the median with probability 2^(-c²), c² =
+  10^0.8, i.e. about 1.3 % (computed);
+* family score = Σ over harmonics of the height above threshold (each
+  capped at 15 dB), plus half the same for sidebands; one family member
+  alone counts only if 8 dB above threshold, else its score is cut to 30 %;
+  cage (FTF) scores are halved, as slip, line-frequency and load-zone
+  modulation also live in that region of the envelope and cage defects are
+  rare; confidence = 1 − exp(−score/20);
+* families compete: the one with the strongest harmonics (Σ height ÷
+  harmonic number) wins, its lines are set aside and the others re-scored,
+  so that no family borrows another's lines through a slip-shifted
+  fundamental (the 3rd BSF harmonic lies 1.4 % from 2×BPFO on a 6205);
+* stage (common practice): 1 defect only in the envelope; 2 a defect tone
+  also in the velocity spectrum; 3 harmonics there and, for inner race and
+  rolling element, sidebands; 4 broadband floor raised (needs a baseline:
+  passed in as ``floor_rise_db``).
 """
 
 from __future__ import annotations
@@ -433,7 +450,6 @@ def _spectrum_stage(
     h = np.where(_sync_mask(vel.f_hz, speed_hz, settings.sync_tol, df), 0.0, h)
     f0 = score.fundamental_hz
     found, ev = 0, []
-    label = {"outer": "BPFO", "inner": "BPFI", "ball": "2xBSF", "cage": "FTF"}[score.defect]
     for k in range(1, 4):
         if k * f0 >= vel.fmax_hz:
             break
@@ -502,7 +518,7 @@ def diagnose_bearings(
                 evidence=top.evidence + tuple(vel_ev),
                 component=b.name,
                 stage=stage,
-                extra={"scores": others, "view": top.view, "called": called},
+                extra={"bearing": b.name, "scores": others, "view": top.view, "called": called},
             )
         )
     return tuple(findings)
@@ -572,4 +588,33 @@ def unassigned_tones(
             component="",
             extra={"order": round(order, 3)},
         ),
+    )
+
+
+def specs_from_config(bearings) -> tuple[BearingSpec, ...]:
+    """Bearing specs from ``machine.bearings`` entries (config.BearingConfig).
+
+    Geometry gives the orders (:func:`agent.kinematics.bearing_orders`); a
+    non-zero ``bpfo``/``bpfi``/``bsf``/``ftf`` multiplier replaces the
+    computed one (for bearings whose makers publish the multipliers).
+    """
+    out = []
+    for b in bearings:
+        o = bearing_orders(b.balls, b.ball_diameter_mm, b.pitch_diameter_mm, b.contact_angle_deg)
+        o = BearingOrders(
+            ftf=b.ftf or o.ftf,
+            bsf=b.bsf or o.bsf,
+            bpfo=b.bpfo or o.bpfo,
+            bpfi=b.bpfi or o.bpfi,
+        )
+        out.append(BearingSpec(b.name, o))
+    return tuple(out)
+
+
+def settings_from_config(analysis) -> BearingSettings:
+    """Detector settings from the ``[analysis]`` section (config.AnalysisConfig)."""
+    band = tuple(float(v) for v in analysis.envelope_band_hz)
+    return BearingSettings(
+        slip_tol=float(analysis.bearing_slip_tol),
+        band_hz=None if band == (0.0, 0.0) else band,
     )

@@ -122,6 +122,10 @@ class BearingConfig:
     pitch_diameter_mm: float = _f(range=(1.0, 5000.0))
     contact_angle_deg: float = _f(0.0, range=(0.0, 60.0))
     shaft: str = _f("", help="shaft the bearing sits on ('' = the reference shaft)")
+    bpfo: float = _f(0.0, range=(0.0, 200.0), help="BPFO as a multiple of shaft speed; 0 = from the geometry")
+    bpfi: float = _f(0.0, range=(0.0, 200.0), help="BPFI as a multiple of shaft speed; 0 = from the geometry")
+    bsf: float = _f(0.0, range=(0.0, 100.0), help="BSF (one spin, not 2×BSF) per shaft turn; 0 = from the geometry")
+    ftf: float = _f(0.0, range=(0.0, 1.0), help="FTF (cage) as a multiple of shaft speed; 0 = from the geometry")
 
 
 @dataclass(frozen=True, slots=True)
@@ -185,6 +189,12 @@ class AnalysisConfig:
     iso_band_hz: tuple[float, float] = _f((0.0, 0.0), help="[low, high]; (0, 0) = from speed range")
     peak_min_height_db: float = _f(6.0, range=(0.0, 60.0))
     max_peaks: int = _f(40, range=(1, 1000))
+    envelope_band_hz: tuple[float, float] = _f(
+        (0.0, 0.0), help="[low, high] demodulation band for bearing envelopes; (0, 0) = chosen by the kurtogram"
+    )
+    bearing_slip_tol: float = _f(
+        0.02, range=(0.005, 0.1), help="± fraction around each bearing defect frequency searched (slip)"
+    )
 
 
 @dataclass(frozen=True, slots=True)
@@ -386,6 +396,11 @@ def _cross_checks(cfg: AgentConfig, errors: list[str]) -> None:
     blo, bhi = ana.iso_band_hz
     if (blo, bhi) != (0.0, 0.0) and not (0 < blo < bhi <= nyquist):
         errors.append(f"analysis.iso_band_hz: [{blo}, {bhi}] must satisfy 0 < low < high <= {nyquist}")
+    elo, ehi = ana.envelope_band_hz
+    if (elo, ehi) != (0.0, 0.0) and not (0 <= elo < ehi <= nyquist):
+        errors.append(
+            f"analysis.envelope_band_hz: [{elo}, {ehi}] must satisfy 0 <= low < high <= {nyquist} (source.fs_hz/2)"
+        )
     if src.interval_s < src.capture_s:
         errors.append(f"source.interval_s: {src.interval_s} is shorter than source.capture_s {src.capture_s}")
     if cfg.alarms.danger_ratio <= cfg.alarms.alert_ratio:

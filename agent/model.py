@@ -126,4 +126,5 @@ class Finding:
             "action": self.action,
             "urgency": self.urgency,
             "confirm": list(self.confirm),
+            **({"bearing": self.extra["bearing"]} if "bearing" in self.extra else {}),
         }

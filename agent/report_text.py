@@ -46,6 +46,11 @@ def analysis_text(a, cfg: AgentConfig, rec=None, *, orders: bool = False) -> str
         lines += ["", "Findings"]
         for f in a.findings:
             lines.append(f"  [{f.severity.name.lower()}] {f.code} ({f.confidence:.2f}) {f.title}")
+            for e in f.evidence:
+                lines.append(
+                    f"      {e.get('label', ''):<24} {e.get('freq_hz', 0.0):10.2f} Hz  "
+                    f"{e.get('height_db', 0.0):5.1f} dB > floor  {e.get('spectrum', '')}"
+                )
             if f.action:
                 lines.append(f"      action: {f.action} ({f.urgency})")
     lines += ["", f"Caution: {SAFETY_NOTE}"]

@@ -19,7 +19,6 @@ import numpy as np
 
 from agent.kinematics import BearingOrders
 
-DEFECT_ORDER = {"outer": "bpfo", "inner": "bpfi", "ball": "bsf2"}
 
 
 def defect_order(orders: BearingOrders, defect: str) -> float:
