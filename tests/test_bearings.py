@@ -126,3 +126,54 @@ def test_bad_arguments_are_refused():
         BearingSettings(n_harmonics=0)
     with pytest.raises(ValueError, match="balls"):
         BearingSpec.from_geometry("x", 2, 5.0, 30.0)
+
+
+# ---------------------------------------------------------------- configuration
+
+
+def _cfg(machine_extra=None, analysis=None):
+    from agent.config import parse_config
+
+    bearing = {"name": "motor DE", "balls": 9, "ball_diameter_mm": 7.94, "pitch_diameter_mm": 39.04}
+    bearing.update(machine_extra or {})
+    return parse_config({"machine": {"bearings": [bearing]}, "analysis": analysis or {}}, "t.toml")
+
+
+def test_specs_from_config_use_geometry_or_the_makers_multipliers():
+    from agent.bearings import settings_from_config, specs_from_config
+
+    cfg = _cfg()
+    (spec,) = specs_from_config(cfg.machine.bearings)
+    # 6205: 9 balls, 7.94 mm on 39.04 mm → BPFO 3.5848, BPFI 5.4152 (CWRU bearing page; REFERENCES.md §3)
+    assert spec.name == "motor DE"
+    assert spec.orders.bpfo == pytest.approx(3.5848, abs=2e-3)
+    assert spec.orders.bpfi == pytest.approx(5.4152, abs=2e-3)
+    (spec,) = specs_from_config(_cfg({"bpfo": 3.6, "ftf": 0.4}).machine.bearings)
+    assert spec.orders.bpfo == 3.6 and spec.orders.ftf == 0.4
+    assert spec.orders.bpfi == pytest.approx(5.4152, abs=2e-3)  # not given: from geometry
+    st = settings_from_config(cfg.analysis)
+    assert st.band_hz is None and st.slip_tol == 0.02
+    st = settings_from_config(_cfg(analysis={"envelope_band_hz": [2000.0, 5000.0], "bearing_slip_tol": 0.015}).analysis)
+    assert st.band_hz == (2000.0, 5000.0) and st.slip_tol == 0.015
+
+
+@pytest.mark.parametrize(
+    "analysis, match",
+    [
+        ({"envelope_band_hz": [5000.0, 2000.0]}, "analysis.envelope_band_hz"),
+        ({"envelope_band_hz": [1000.0, 90000.0]}, "analysis.envelope_band_hz"),
+        ({"bearing_slip_tol": 0.5}, "analysis.bearing_slip_tol"),
+    ],
+)
+def test_bad_bearing_analysis_keys_are_reported(analysis, match):
+    from agent.errors import ConfigError
+
+    with pytest.raises(ConfigError, match=match):
+        _cfg(analysis=analysis)
+
+
+def test_bad_multiplier_is_reported():
+    from agent.errors import ConfigError
+
+    with pytest.raises(ConfigError, match=r"machine.bearings\[0\].ftf"):
+        _cfg({"ftf": 3.0})
