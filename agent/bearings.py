@@ -53,7 +53,7 @@ where so marked), stated here:
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy import ndimage
@@ -618,3 +618,40 @@ def settings_from_config(analysis) -> BearingSettings:
         slip_tol=float(analysis.bearing_slip_tol),
         band_hz=None if band == (0.0, 0.0) else band,
     )
+
+
+def bearing_findings(
+    accel_ms2: np.ndarray,
+    fs_hz: float,
+    speed_hz: float | None,
+    machine,
+    analysis,
+    *,
+    angle_domain_speed_hz: float | None = None,
+) -> tuple[Finding, ...]:
+    """The pipeline's bearing stage: findings for one capture from the config sections.
+
+    ``machine``/``analysis`` are the ``[machine]`` and ``[analysis]`` config
+    sections (duck-typed). No speed (``None`` or 0) → no findings: bearing
+    tones are multiples of shaft speed. For a capture re-sampled to shaft
+    angle pass ``fs_hz`` = samples per revolution, ``speed_hz`` = 1 and the
+    mean speed as ``angle_domain_speed_hz``: evidence is then given in Hz at
+    that speed, with its order.
+    """
+    if not speed_hz or speed_hz <= 0:
+        return ()
+    found = diagnose_bearings(
+        accel_ms2, fs_hz, speed_hz, specs_from_config(machine.bearings), settings_from_config(analysis)
+    )
+    if angle_domain_speed_hz:
+        k = float(angle_domain_speed_hz)
+        found = tuple(
+            replace(
+                f,
+                evidence=tuple({**e, "order": round(e["freq_hz"], 4), "freq_hz": round(e["freq_hz"] * k, 3)}
+                               for e in f.evidence),
+                extra={**f.extra, "angle_domain": True},
+            )
+            for f in found
+        )
+    return found

@@ -177,3 +177,23 @@ def test_bad_multiplier_is_reported():
 
     with pytest.raises(ConfigError, match=r"machine.bearings\[0\].ftf"):
         _cfg({"ftf": 3.0})
+
+
+def test_pipeline_bearing_stage_from_config_sections():
+    from agent.bearings import bearing_findings
+    from agent.config import parse_config
+
+    cfg = parse_config(
+        {"machine": {"bearings": [{"name": "pump DE", "balls": 8, "ball_diameter_mm": 12.7,
+                                   "pitch_diameter_mm": 60.0}]}},
+        "t.toml",
+    )
+    x = bearing_fault_signal("inner", -9.0, SPEC.orders, seed=12)
+    (f,) = bearing_findings(x, FS, SPEED, cfg.machine, cfg.analysis)
+    assert f.code == CODES["inner"] and f.to_json()["bearing"] == "pump DE"
+    assert bearing_findings(x, FS, None, cfg.machine, cfg.analysis) == ()  # no speed, no bearing tones
+    # the same capture as if re-sampled to 1024 samples per revolution: evidence back in Hz, with orders
+    (g,) = bearing_findings(x, FS / SPEED, 1.0, cfg.machine, cfg.analysis, angle_domain_speed_hz=SPEED)
+    assert g.code == CODES["inner"]
+    assert g.evidence[0]["freq_hz"] == pytest.approx(SPEC.orders.bpfi * SPEED, rel=0.02)
+    assert g.evidence[0]["order"] == pytest.approx(SPEC.orders.bpfi, rel=0.02)
