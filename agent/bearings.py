@@ -118,6 +118,7 @@ class BearingSettings:
     band_hz: tuple[float, float] | None = None  # fixed demodulation band (None = kurtogram)
     fmin_hz: float | None = None  # lowest demodulation frequency (None = 4× highest defect tone)
     sync_tol: float = 0.004  # skip lines within this fraction (and 1.5 lines) of n×1X
+    line_hz: float | None = None  # supply frequency: its harmonics are skipped too (None = unknown)
 
     def __post_init__(self) -> None:
         if not 0.0 < self.slip_tol <= 0.1:
@@ -174,12 +175,24 @@ def _height_db(ses: EnvelopeSpectrum, width_hz: float, smooth_lines: int = 1) ->
     return h
 
 
-def _sync_mask(f_hz: np.ndarray, speed_hz: float, tol: float, df: float) -> np.ndarray:
-    """True for lines within ``tol`` (and 1.5 lines) of a whole multiple of 1X."""
-    order = f_hz / speed_hz
-    n = np.round(order)
-    dist_hz = np.abs(f_hz - n * speed_hz)
-    return (n >= 1) & (dist_hz <= np.maximum(tol * n * speed_hz, 1.5 * df))
+def _multiples_mask(f_hz: np.ndarray, base_hz: float, tol: float, df: float) -> np.ndarray:
+    """True for lines within ``tol`` (and 1.5 lines) of a whole multiple of ``base_hz``."""
+    n = np.round(f_hz / base_hz)
+    dist_hz = np.abs(f_hz - n * base_hz)
+    return (n >= 1) & (dist_hz <= np.maximum(tol * n * base_hz, 1.5 * df))
+
+
+def _sync_mask(f_hz: np.ndarray, speed_hz: float, settings: "BearingSettings", df: float) -> np.ndarray:
+    """Lines that are not bearing tones: n×1X and, when the supply frequency is known, n×LF.
+
+    Line-frequency harmonics modulate the envelope of electrical machines
+    (magnetic forces at 2×LF); the mask is narrow (0.1 %, 1.5 lines) since
+    the supply frequency is held closely.
+    """
+    mask = _multiples_mask(f_hz, speed_hz, settings.sync_tol, df)
+    if settings.line_hz:
+        mask |= _multiples_mask(f_hz, settings.line_hz, 0.001, df)
+    return mask
 
 
 def _line_near(h: np.ndarray, df: float, f_hz: float, half_lines: int) -> tuple[int, float]:
@@ -357,7 +370,7 @@ def score_bearing(
     for ses in views:
         df = ses.bin_width_hz
         width = max(0.5 * speed_hz, 10 * df)
-        sync = _sync_mask(ses.f_hz, speed_hz, settings.sync_tol, df)
+        sync = _sync_mask(ses.f_hz, speed_hz, settings, df)
         view = f"{ses.band_source} {ses.band_hz[0]:.0f}-{ses.band_hz[1]:.0f} Hz"
         prepared.append((ses, sync, view, width))
 
@@ -447,7 +460,7 @@ def _spectrum_stage(
     h = logp - 10 * np.log10(np.maximum(noise_floor(vel), 1e-300))
     df = vel.bin_width_hz
     # shaft harmonics are not bearing tones, even where they fall on one
-    h = np.where(_sync_mask(vel.f_hz, speed_hz, settings.sync_tol, df), 0.0, h)
+    h = np.where(_sync_mask(vel.f_hz, speed_hz, settings, df), 0.0, h)
     f0 = score.fundamental_hz
     found, ev = 0, []
     for k in range(1, 4):
@@ -547,7 +560,7 @@ def unassigned_tones(
     for ses in views:
         df = ses.bin_width_hz
         h = _height_db(ses, width_hz=max(0.5 * speed_hz, 10 * df))
-        h = np.where(_sync_mask(ses.f_hz, speed_hz, settings.sync_tol, df), 0.0, h)
+        h = np.where(_sync_mask(ses.f_hz, speed_hz, settings, df), 0.0, h)
         fmax = min(float(ses.f_hz[-1]), 0.8 * (ses.band_hz[1] - ses.band_hz[0]))
         sel = (ses.f_hz >= min_order * speed_hz) & (ses.f_hz <= max_order * speed_hz)
         sel &= h >= thr + 4.0
@@ -611,12 +624,14 @@ def specs_from_config(bearings) -> tuple[BearingSpec, ...]:
     return tuple(out)
 
 
-def settings_from_config(analysis) -> BearingSettings:
-    """Detector settings from the ``[analysis]`` section (config.AnalysisConfig)."""
+def settings_from_config(analysis, machine=None) -> BearingSettings:
+    """Detector settings from the ``[analysis]`` (and ``[machine]``: supply frequency) sections."""
     band = tuple(float(v) for v in analysis.envelope_band_hz)
+    line = getattr(machine, "line_hz", None) if machine is not None else None
     return BearingSettings(
         slip_tol=float(analysis.bearing_slip_tol),
         band_hz=None if band == (0.0, 0.0) else band,
+        line_hz=float(line) if line else None,
     )
 
 
@@ -641,7 +656,7 @@ def bearing_findings(
     if not speed_hz or speed_hz <= 0:
         return ()
     found = diagnose_bearings(
-        accel_ms2, fs_hz, speed_hz, specs_from_config(machine.bearings), settings_from_config(analysis)
+        accel_ms2, fs_hz, speed_hz, specs_from_config(machine.bearings), settings_from_config(analysis, machine)
     )
     if angle_domain_speed_hz:
         k = float(angle_domain_speed_hz)

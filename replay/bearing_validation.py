@@ -41,9 +41,11 @@ IMS_ZA2115 = BearingSpec.from_geometry("ZA-2115", 16, 0.331 * INCH_MM, 2.815 * I
 #: sample rate by CWRU folder (PROVENANCE.md: normal_baseline is 48 kHz)
 CWRU_FS_HZ = {"12k_drive_end": 12000.0, "48k_drive_end": 48000.0, "normal_baseline": 48000.0}
 CWRU_SR_SET = {"12k_drive_end": "12k_DE", "48k_drive_end": "48k_DE", "normal_baseline": "48k_normal_baseline"}
-#: speed search as in a default config (machine.speed_rpm 600-3600); CWRU and IMS are US rigs (60 Hz)
+#: speed search as in a default config (machine.speed_rpm 600-3600); CWRU and IMS are US rigs (60 Hz
+#: supply, machine.line_hz = 60)
 SPEED_RANGE_HZ = (10.0, 60.0)
 LINE_HZ = 60.0
+SETTINGS = BearingSettings(line_hz=LINE_HZ)
 IMS_STATED_SPEED_HZ = 2000.0 / 60.0  # dataset readme: 2000 rpm
 TRUTH = {"inner race": "inner", "ball": "ball", "normal": "none"}
 
@@ -128,7 +130,7 @@ def _call_of(findings) -> tuple[str, float, int | None, dict, str]:
     return "none", 0.0, None, {}, ""
 
 
-def run_cwru(data: Path, settings: BearingSettings = BearingSettings()) -> list[RecordResult]:
+def run_cwru(data: Path, settings: BearingSettings = SETTINGS) -> list[RecordResult]:
     """Every CWRU record: drive-end channel, agent's speed, 6205 geometry."""
     sr = _sr_table(data)
     out = []
@@ -173,7 +175,7 @@ def run_cwru(data: Path, settings: BearingSettings = BearingSettings()) -> list[
     return out
 
 
-def run_ims(data: Path, settings: BearingSettings = BearingSettings()) -> list[dict]:
+def run_ims(data: Path, settings: BearingSettings = SETTINGS) -> list[dict]:
     """The two healthy IMS snapshots, every channel: agent's speed; stated speed with and without geometry."""
     out = []
     for row in _manifest(data):
@@ -235,6 +237,7 @@ def render(rows: list[RecordResult], ims: list[dict], sweep: dict, elapsed_s: fl
     conf = confusion(rows)
     name = {"outer": "outer race", "inner": "inner race", "ball": "rolling element", "cage": "cage",
             "none": "no call"}
+    tname = {**name, "none": "healthy"}
     L = []
     a = L.append
     a("# Bearing diagnosis: validation on open data")
@@ -254,7 +257,7 @@ def render(rows: list[RecordResult], ims: list[dict], sweep: dict, elapsed_s: fl
     a("| truth \\ call | " + " | ".join(name[c] for c in calls) + " |")
     a("|---|" + "---|" * len(calls))
     for t in truths:
-        a(f"| {name[t]} | " + " | ".join(str(conf.get((t, c), 0)) for c in calls) + " |")
+        a(f"| {tname[t]} | " + " | ".join(str(conf.get((t, c), 0)) for c in calls) + " |")
     a("")
     a("### By benchmark verdict")
     a("")
@@ -275,7 +278,7 @@ def render(rows: list[RecordResult], ims: list[dict], sweep: dict, elapsed_s: fl
     for r in rows:
         sc = "/".join(f"{r.scores.get(d, 0):.2f}" for d in ("outer", "inner", "ball", "cage")) if r.scores else "-"
         mark = "" if r.correct else " ✗" if r.wrong else " –" if r.truth != "none" else ""
-        a(f"| {r.record} | {CWRU_FS_HZ[r.folder] / 1000:g}k | {name[r.truth]} | {r.size_in or '-'} | {r.load_hp} | "
+        a(f"| {r.record} | {CWRU_FS_HZ[r.folder] / 1000:g}k | {tname[r.truth]} | {r.size_in or '-'} | {r.load_hp} | "
           f"{r.sr_best or 'baseline'} {r.sr_ypn} | {r.speed_hz:.3f} ({r.file_speed_hz:.3f}) | {r.speed_source} | "
           f"{name[r.call]}{mark} | {r.confidence:.2f} | {r.stage or '-'} | {sc} |")
     a("")
