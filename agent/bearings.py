@@ -73,6 +73,9 @@ CODES = {
 #: code of an unassigned non-synchronous envelope family (no geometry configured)
 UNASSIGNED_CODE = "bearing_tone_unassigned"
 
+#: a capture must hold at least this many periods of the slowest race/rolling-element tone
+MIN_DEFECT_PERIODS = 20
+
 #: highest demodulated frequency as a fraction of fs (anti-alias filters roll off above ~0.45 fs)
 FMAX_FRACTION = 0.45
 
@@ -341,8 +344,11 @@ def envelope_views(
     fmax = FMAX_FRACTION * fs_hz
     fmin = settings.fmin_hz if settings.fmin_hz is not None else min(4.0 * max_defect_hz, 0.25 * fmax)
     min_bw = min(4.0 * max_defect_hz, 0.5 * (fmax - fmin))
-    kg = envelope_spectrum(accel, fs_hz, fmin_hz=fmin, min_bandwidth_hz=min_bw, fmax_hz=fmax)
     full = envelope_spectrum(accel, fs_hz, (fmin, fmax))
+    try:
+        kg = envelope_spectrum(accel, fs_hz, fmin_hz=fmin, min_bandwidth_hz=min_bw, fmax_hz=fmax)
+    except ValueError:
+        return (full,)  # capture too short for any kurtogram band of that width: the full band only
     return (kg, full)
 
 
@@ -502,6 +508,11 @@ def diagnose_bearings(
     x = np.asarray(accel_ms2, dtype=np.float64)
     if not speed_hz > 0:
         raise ValueError(f"speed_hz must be > 0, got {speed_hz!r}")
+    if x.ndim != 1:
+        raise ValueError(f"accel_ms2 must be 1-D, got shape {x.shape}")
+    slowest = min((min(b.orders.bpfo, b.orders.bpfi, 2 * b.orders.bsf) for b in bearings), default=1.0)
+    if x.size / fs_hz * slowest * speed_hz < MIN_DEFECT_PERIODS:
+        return ()  # too few impacts in the capture to show a family: no verdict either way
     if not bearings:
         views = envelope_views(x, fs_hz, 10.0 * speed_hz, settings)
         return unassigned_tones(views, speed_hz, settings)
