@@ -90,7 +90,7 @@ def analyse_capture(
         f_low_hz=band[0], previous=previous_speed,
     )
     peaks = sv.peaks
-    return Analysis(
+    a = Analysis(
         capture=capture,
         plan=plan,
         acc=acc,
@@ -103,6 +103,36 @@ def analyse_capture(
         extras={"speed_hz": sv.speed.speed_hz} if sv.speed.found else {},
         speed=sv,
     )
+    return with_bearing_findings(a, cfg)
+
+
+def with_bearing_findings(a: Analysis, cfg: AgentConfig) -> Analysis:
+    """Add the bearing stage's findings (agent.bearings) once the running speed is known.
+
+    Speed comes from the speed stage (``a.extras["speed_hz"]``); with none
+    there is no bearing verdict. With no ``[[machine.bearings]]`` configured,
+    non-synchronous envelope families are reported as unassigned tones.
+    When the speed stage order-tracked the capture (speed moving within
+    it), the envelope is taken on the angle-resampled waveform.
+    """
+    from dataclasses import replace
+
+    from agent.bearings import bearing_findings
+    from agent.orders import resample_to_angle
+
+    speed_hz = a.extras.get("speed_hz")
+    if not speed_hz:
+        return a  # no running speed, no bearing tones (with no bearing configured: unassigned families)
+    x, fs, sp, angle_speed = a.capture.accel_ms2, a.capture.fs_hz, float(speed_hz), None
+    view = a.speed
+    if view is not None and view.tracked and view.profile is not None:
+        spr = int(fs / (1.05 * (view.profile.mean_hz + view.profile.span_hz)))
+        try:
+            x, fs, sp, angle_speed = resample_to_angle(x, fs, view.profile, spr), float(spr), 1.0, view.profile.mean_hz
+        except ValueError:
+            pass  # fall back to the time-domain capture
+    found = bearing_findings(x, fs, sp, cfg.machine, cfg.analysis, angle_domain_speed_hz=angle_speed)
+    return replace(a, findings=a.findings + found) if found else a
 
 
 def analysis_to_json(a: Analysis, cfg: AgentConfig, *, orders: bool = False) -> dict:

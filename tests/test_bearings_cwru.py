@@ -93,3 +93,44 @@ def test_confusion_table_renders(cwru):
                                                (0, "ball"): (1, 0, 1), (0, "none"): (0, 0, 1)}, 1.0)
     assert "| truth \\ call |" in doc
     assert "| 135 | 48k | outer race |" in doc
+
+
+CWRU_RIG_TOML = """
+[machine]
+speed_rpm = [1500.0, 1900.0]
+line_hz = 60.0
+
+[[machine.bearings]]
+name = "motor drive end"
+balls = 9
+ball_diameter_mm = 7.94004   # 0.3126 in (CWRU bearing data, PROVENANCE.md)
+pitch_diameter_mm = 39.0398  # 1.537 in
+contact_angle_deg = 0.0
+"""
+
+
+def test_analyze_json_and_text_carry_the_bearing_finding(data, tmp_path):
+    import json
+    import subprocess
+    import sys
+
+    pytest.importorskip("agent.speed", reason="bearing findings need the running-speed stage")
+    cfg = tmp_path / "cwru.toml"
+    cfg.write_text(CWRU_RIG_TOML)
+    rec = data / "cwru" / "12k_drive_end" / "130.mat"
+    base = [sys.executable, "-m", "agent", "analyze", str(rec), "--channel", "X130_DE_time", "--fs", "12000",
+            "--units", "g", "--config", str(cfg)]
+    out = subprocess.run(base + ["--json"], capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    doc = json.loads(out.stdout)
+    bearing = [f for f in doc["findings"] if f["code"].startswith("bearing_")]
+    assert bearing, doc["findings"]
+    f = bearing[0]
+    # record 130: outer race fault, 0.007 in (CWRU label; Smith & Randall 2015: Y1)
+    assert f["code"] == "bearing_outer_race" and f["bearing"] == "motor drive end"
+    assert f["confidence"] > 0.5
+    assert any(e["label"] == "BPFO" and e["freq_hz"] == pytest.approx(3.5848 * 29.93, rel=0.02)
+               for e in f["evidence"])
+    text = subprocess.run(base, capture_output=True, text=True, timeout=120)
+    assert text.returncode == 0, text.stderr
+    assert "bearing_outer_race" in text.stdout and "BPFO" in text.stdout
