@@ -299,7 +299,7 @@ def _score_defect(
             score += min(scale * (hk - thr), 15.0)
             rank += scale * (hk - thr) / k
             evidence.append(
-                {"freq_hz": round(f, 3), "label": _harmonic_label(defect, k),
+                {"freq_hz": round(float(f), 3), "label": _harmonic_label(defect, k),
                  "height_db": round(hk, 1), "spectrum": f"envelope ({view})"}
             )
     n_sb = 0
@@ -311,7 +311,7 @@ def _score_defect(
                 n_sb += 1
                 score += 0.5 * min(scale * (hs - thr), 15.0)
                 evidence.append(
-                    {"freq_hz": round(f, 3), "label": f"{label} {tag}{sb_label} sideband",
+                    {"freq_hz": round(float(f), 3), "label": f"{label} {tag}{sb_label} sideband",
                      "height_db": round(hs, 1), "spectrum": f"envelope ({view})"}
                 )
     # a lone line is weak evidence: at least two family members or one very strong fundamental
@@ -475,7 +475,7 @@ def _spectrum_stage(
         i, hk = _line_near(h, df, k * f0, 1 + int(round(0.005 * k * f0 / df)))
         if hk >= settings.min_height_db:
             found += 1
-            ev.append({"freq_hz": round(i * df, 2), "label": _harmonic_label(score.defect, k),
+            ev.append({"freq_hz": round(float(i * df), 2), "label": _harmonic_label(score.defect, k),
                        "height_db": round(hk, 1), "spectrum": "velocity"})
     if found == 0:
         return 1, ev
@@ -588,12 +588,15 @@ def unassigned_tones(
                     members.append((k, j * df, hk))
             if len(members) < 3:
                 continue
+            # rank as the comb does (height ÷ harmonic number): the family whose
+            # fundamental and low harmonics stand highest, not a sideband family
+            rank = sum((m[2] - thr) / m[0] for m in members)
             score = sum(min(m[2] - thr, 15.0) for m in members)
-            if best is None or score > best[0]:
-                best = (score, f0, members, view)
+            if best is None or rank > best[0]:
+                best = (rank, score, f0, members, view)
     if best is None:
         return ()
-    score, f0, members, view = best
+    _, score, f0, members, view = best
     conf = min(0.6, 1.0 - math.exp(-score / 30.0))
     if conf < settings.report_confidence:
         return ()
@@ -605,12 +608,13 @@ def unassigned_tones(
             severity=Severity.INFO,
             title=f"probable bearing tone at {order:.2f} × shaft speed",
             evidence=tuple(
-                {"freq_hz": round(f, 3), "label": f"{k}x tone" if k > 1 else "tone",
-                 "height_db": round(hk, 1), "order": round(f / speed_hz, 3), "spectrum": f"envelope ({view})"}
+                {"freq_hz": round(float(f), 3), "label": f"{k}x tone" if k > 1 else "tone",
+                 "height_db": round(float(hk), 1), "order": round(float(f) / speed_hz, 3),
+                 "spectrum": f"envelope ({view})"}
                 for k, f, hk in members
             ),
             component="",
-            extra={"order": round(order, 3)},
+            extra={"order": round(float(order), 3)},
         ),
     )
 

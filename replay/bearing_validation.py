@@ -94,6 +94,7 @@ class RecordResult:
     stage: int | None
     scores: dict
     title: str
+    unassigned_order: float | None = None  # with no geometry configured: the family reported, × shaft speed
 
     @property
     def correct(self) -> bool:
@@ -150,6 +151,7 @@ def run_cwru(data: Path, settings: BearingSettings = SETTINGS) -> list[RecordRes
                                speed, settings)
             scores = {d: round(s.confidence, 2) for d, s in sc.items()}
         call, conf, stage, _, title = _call_of(findings)
+        no_geo = diagnose_bearings(rec.accel_ms2, fs, speed, (), settings) if speed > 0 else ()
         num = path.stem
         s = sr.get((CWRU_SR_SET[folder], num), {})
         truth = "outer" if row["fault_type"].startswith("outer") else TRUTH.get(row["fault_type"], "?")
@@ -170,6 +172,7 @@ def run_cwru(data: Path, settings: BearingSettings = SETTINGS) -> list[RecordRes
                 stage=stage,
                 scores=scores,
                 title=title,
+                unassigned_order=no_geo[0].extra["order"] if no_geo else None,
             )
         )
     return out
@@ -273,17 +276,20 @@ def render(rows: list[RecordResult], ims: list[dict], sweep: dict, elapsed_s: fl
     a("")
     a("### Per record")
     a("")
-    a("| record | fs | truth | size in | load hp | benchmark | speed Hz (file) | speed source | call | confidence | stage | scores (outer/inner/ball/cage) |")
-    a("|---|---|---|---|---|---|---|---|---|---|---|---|")
+    a("| record | fs | truth | size in | load hp | benchmark | speed Hz (file) | speed source | call | confidence | stage | scores (outer/inner/ball/cage) | no geometry: tone × shaft |")
+    a("|---|---|---|---|---|---|---|---|---|---|---|---|---|")
     for r in rows:
         sc = "/".join(f"{r.scores.get(d, 0):.2f}" for d in ("outer", "inner", "ball", "cage")) if r.scores else "-"
         mark = "" if r.correct else " ✗" if r.wrong else " –" if r.truth != "none" else ""
         a(f"| {r.record} | {CWRU_FS_HZ[r.folder] / 1000:g}k | {tname[r.truth]} | {r.size_in or '-'} | {r.load_hp} | "
           f"{r.sr_best or 'baseline'} {r.sr_ypn} | {r.speed_hz:.3f} ({r.file_speed_hz:.3f}) | {r.speed_source} | "
-          f"{name[r.call]}{mark} | {r.confidence:.2f} | {r.stage or '-'} | {sc} |")
+          f"{name[r.call]}{mark} | {r.confidence:.2f} | {r.stage or '-'} | {sc} | "
+          f"{'-' if r.unassigned_order is None else f'{r.unassigned_order:.2f}'} |")
     a("")
     a("✗ wrong call, – missed (no call). Scores are each defect's best confidence (after the winning")
-    a("family's lines are set aside), shown whether or not a call was made.")
+    a("family's lines are set aside), shown whether or not a call was made. The last column is what the")
+    a("agent reports with no bearing geometry configured (\"probable bearing tone at N.NN × shaft speed\");")
+    a("the 6205's kinematic orders are BPFO 3.585, BPFI 5.415, 2×BSF 4.714.")
     a("")
     a("## IMS run-to-failure set 1, first snapshots (healthy), all 8 channels")
     a("")

@@ -68,6 +68,19 @@ def test_benchmark_y_records_get_the_right_call(cwru, record):
     assert r.confidence >= 0.5
 
 
+def test_without_geometry_the_race_defect_tones_are_reported_as_unassigned(cwru):
+    # kinematic orders of the 6205 (CWRU bearing data; Smith & Randall 2015, Table 2): BPFO 3.5848,
+    # BPFI 5.4152; a reported family must sit within the 2 % slip band of the record's defect
+    for r in cwru.values():
+        if r.unassigned_order is None:
+            continue
+        assert r.truth in ("outer", "inner"), (r.record, r.unassigned_order)
+        expected = 3.5848 if r.truth == "outer" else 5.4152
+        assert r.unassigned_order == pytest.approx(expected, rel=0.02), r.record
+    race_y = [r for r in cwru.values() if r.truth in ("outer", "inner") and r.call == r.truth]
+    assert all(r.unassigned_order is not None for r in race_y)
+
+
 def test_no_wrong_call_above_half_confidence(cwru):
     wrong = [(r.record, r.truth, r.call, r.confidence) for r in cwru.values() if r.wrong and r.confidence > 0.5]
     assert wrong == []
