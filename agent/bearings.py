@@ -536,16 +536,21 @@ def diagnose_bearings(
                 code=CODES[top.defect],
                 confidence=round(top.confidence, 3),
                 severity=Severity.ALERT if called and stage >= 3 else Severity.WATCH if called else Severity.INFO,
-                title=f"{b.name}: {'' if called else 'possible '}{top.defect.replace('ball', 'rolling element')} "
-                f"defect ({_LABEL[top.defect]} {top.fundamental_hz:.2f} Hz, "
-                f"{top.fundamental_hz / speed_hz:.3f}×), stage {stage}",
+                title=_title(b.name, top.defect, called, top.fundamental_hz, top.fundamental_hz / speed_hz, stage),
                 evidence=top.evidence + tuple(vel_ev),
                 component=b.name,
                 stage=stage,
-                extra={"bearing": b.name, "scores": others, "view": top.view, "called": called},
+                extra={"bearing": b.name, "scores": others, "view": top.view, "called": called,
+                       "defect": top.defect, "order": round(top.fundamental_hz / speed_hz, 4)},
             )
         )
     return tuple(findings)
+
+
+def _title(name: str, defect: str, called: bool, f0_hz: float, order: float, stage: int) -> str:
+    what = {"outer": "outer race", "inner": "inner race", "ball": "rolling element", "cage": "cage"}[defect]
+    return (f"{name}: {'' if called else 'possible '}{what} defect "
+            f"({_LABEL[defect]} {f0_hz:.2f} Hz, {order:.3f}× shaft speed), stage {stage}")
 
 
 def unassigned_tones(
@@ -680,6 +685,9 @@ def bearing_findings(
                 f,
                 evidence=tuple({**e, "order": round(e["freq_hz"], 4), "freq_hz": round(e["freq_hz"] * k, 3)}
                                for e in f.evidence),
+                title=_title(f.component, f.extra["defect"], f.extra["called"], f.extra["order"] * k,
+                             f.extra["order"], f.stage or 1) if "defect" in f.extra
+                else f.title,
                 extra={**f.extra, "angle_domain": True},
             )
             for f in found

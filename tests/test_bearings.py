@@ -197,6 +197,10 @@ def test_pipeline_bearing_stage_from_config_sections():
     assert g.code == CODES["inner"]
     assert g.evidence[0]["freq_hz"] == pytest.approx(SPEC.orders.bpfi * SPEED, rel=0.02)
     assert g.evidence[0]["order"] == pytest.approx(SPEC.orders.bpfi, rel=0.02)
+    import re
+
+    hz = float(re.search(r"BPFI ([0-9.]+) Hz", g.title).group(1))
+    assert hz == pytest.approx(SPEC.orders.bpfi * SPEED, rel=0.02)
 
 
 def test_short_capture_gives_no_verdict_rather_than_an_error():
