@@ -59,7 +59,7 @@ import numpy as np
 from scipy import ndimage
 
 from agent.envelope import EnvelopeSpectrum, envelope_spectrum
-from agent.kinematics import BearingOrders, bearing_orders
+from agent.kinematics import BearingSpec, bearing_orders, train_from_config
 from agent.model import Finding, Severity
 from agent.spectra import Spectrum, SpectrumPlan, accel_spectrum, noise_floor, velocity_spectrum
 
@@ -90,23 +90,11 @@ def _harmonic_label(defect: str, k: int) -> str:
     return f"{k}x{base}" if k > 1 else base
 
 
-@dataclass(frozen=True, slots=True)
-class BearingSpec:
-    """One bearing to watch: its name and defect orders (multiples of shaft speed)."""
-
-    name: str
-    orders: BearingOrders
-
-    @classmethod
-    def from_geometry(
-        cls,
-        name: str,
-        balls: int,
-        ball_diameter_mm: float,
-        pitch_diameter_mm: float,
-        contact_angle_deg: float = 0.0,
-    ) -> "BearingSpec":
-        return cls(name, bearing_orders(balls, ball_diameter_mm, pitch_diameter_mm, contact_angle_deg))
+def spec_from_geometry(
+    name: str, balls: int, ball_diameter_mm: float, pitch_diameter_mm: float, contact_angle_deg: float = 0.0
+) -> BearingSpec:
+    """A bearing to watch from its geometry (kinematic orders: :func:`agent.kinematics.bearing_orders`)."""
+    return BearingSpec(name, bearing_orders(balls, ball_diameter_mm, pitch_diameter_mm, contact_angle_deg))
 
 
 @dataclass(frozen=True, slots=True)
@@ -541,7 +529,8 @@ def diagnose_bearings(
                 component=b.name,
                 stage=stage,
                 extra={"bearing": b.name, "scores": others, "view": top.view, "called": called,
-                       "defect": top.defect, "order": round(top.fundamental_hz / speed_hz, 4)},
+                       "defect": top.defect, "fundamental": top.fundamental_hz,
+                       "order": round(top.fundamental_hz / speed_hz, 4)},
             )
         )
     return tuple(findings)
@@ -624,24 +613,15 @@ def unassigned_tones(
     )
 
 
-def specs_from_config(bearings) -> tuple[BearingSpec, ...]:
-    """Bearing specs from ``machine.bearings`` entries (config.BearingConfig).
+def specs_by_shaft(machine) -> dict[str, tuple[float, tuple[BearingSpec, ...]]]:
+    """``machine.bearings`` grouped by shaft: {shaft: (speed ÷ reference speed, specs)}.
 
-    Geometry gives the orders (:func:`agent.kinematics.bearing_orders`); a
-    non-zero ``bpfo``/``bpfi``/``bsf``/``ftf`` multiplier replaces the
-    computed one (for bearings whose makers publish the multipliers).
+    The train (:func:`agent.kinematics.train_from_config`) gives each
+    bearing's orders — from its geometry, or the maker's multipliers where
+    the config gives them — and each shaft's speed ratio.
     """
-    out = []
-    for b in bearings:
-        o = bearing_orders(b.balls, b.ball_diameter_mm, b.pitch_diameter_mm, b.contact_angle_deg)
-        o = BearingOrders(
-            ftf=b.ftf or o.ftf,
-            bsf=b.bsf or o.bsf,
-            bpfo=b.bpfo or o.bpfo,
-            bpfi=b.bpfi or o.bpfi,
-        )
-        out.append(BearingSpec(b.name, o))
-    return tuple(out)
+    train = train_from_config(machine)
+    return {s.name: (float(train.ratios[s.name]), tuple(s.bearings)) for s in train.shafts if s.bearings}
 
 
 def settings_from_config(analysis, machine=None) -> BearingSettings:
@@ -668,16 +648,20 @@ def bearing_findings(
 
     ``machine``/``analysis`` are the ``[machine]`` and ``[analysis]`` config
     sections (duck-typed). No speed (``None`` or 0) → no findings: bearing
-    tones are multiples of shaft speed. For a capture re-sampled to shaft
+    tones are multiples of shaft speed. ``speed_hz`` is the reference
+    shaft's; a bearing on another shaft of the train is searched at that
+    shaft's speed. For a capture re-sampled to shaft
     angle pass ``fs_hz`` = samples per revolution, ``speed_hz`` = 1 and the
     mean speed as ``angle_domain_speed_hz``: evidence is then given in Hz at
     that speed, with its order.
     """
     if not speed_hz or speed_hz <= 0:
         return ()
-    found = diagnose_bearings(
-        accel_ms2, fs_hz, speed_hz, specs_from_config(machine.bearings), settings_from_config(analysis, machine)
-    )
+    settings = settings_from_config(analysis, machine)
+    groups = specs_by_shaft(machine) if machine.bearings else {"": (1.0, ())}
+    found: tuple[Finding, ...] = ()
+    for ratio, specs in groups.values():
+        found += diagnose_bearings(accel_ms2, fs_hz, speed_hz * ratio, specs, settings)
     if angle_domain_speed_hz:
         k = float(angle_domain_speed_hz)
         found = tuple(
@@ -685,7 +669,7 @@ def bearing_findings(
                 f,
                 evidence=tuple({**e, "order": round(e["freq_hz"], 4), "freq_hz": round(e["freq_hz"] * k, 3)}
                                for e in f.evidence),
-                title=_title(f.component, f.extra["defect"], f.extra["called"], f.extra["order"] * k,
+                title=_title(f.component, f.extra["defect"], f.extra["called"], f.extra["fundamental"] * k,
                              f.extra["order"], f.stage or 1) if "defect" in f.extra
                 else f.title,
                 extra={**f.extra, "angle_domain": True},

@@ -27,17 +27,17 @@ ROOT = Path(__file__).resolve().parents[1]
 if str(ROOT) not in sys.path:  # run as a script from anywhere
     sys.path.insert(0, str(ROOT))
 
-from agent.bearings import CODES, BearingSettings, BearingSpec, diagnose_bearings, envelope_views, score_bearing  # noqa: E402
+from agent.bearings import CODES, BearingSettings, diagnose_bearings, spec_from_geometry, envelope_views, score_bearing  # noqa: E402
 from agent.recordings import read_recording  # noqa: E402
 from replay.bearing_signals import bearing_fault_signal  # noqa: E402
 
 INCH_MM = 25.4
 #: CWRU drive-end bearing 6205-2RS (dataset documentation, as in PROVENANCE.md)
-CWRU_DE = BearingSpec.from_geometry("drive end 6205-2RS", 9, 0.3126 * INCH_MM, 1.537 * INCH_MM, 0.0)
+CWRU_DE = spec_from_geometry("drive end 6205-2RS", 9, 0.3126 * INCH_MM, 1.537 * INCH_MM, 0.0)
 #: IMS set 1, Rexnord ZA-2115 double-row roller bearing: 16 rollers, 0.331 in,
 #: 2.815 in pitch, 15.17° (Qiu et al., J. Sound Vib. 289, 2006; from memory,
 #: not in the dataset's readme — used only to check for false calls)
-IMS_ZA2115 = BearingSpec.from_geometry("ZA-2115", 16, 0.331 * INCH_MM, 2.815 * INCH_MM, 15.17)
+IMS_ZA2115 = spec_from_geometry("ZA-2115", 16, 0.331 * INCH_MM, 2.815 * INCH_MM, 15.17)
 #: sample rate by CWRU folder (PROVENANCE.md: normal_baseline is 48 kHz)
 CWRU_FS_HZ = {"12k_drive_end": 12000.0, "48k_drive_end": 48000.0, "normal_baseline": 48000.0}
 CWRU_SR_SET = {"12k_drive_end": "12k_DE", "48k_drive_end": "48k_DE", "normal_baseline": "48k_normal_baseline"}
@@ -205,7 +205,7 @@ def run_ims(data: Path, settings: BearingSettings = SETTINGS) -> list[dict]:
     return out
 
 
-SYN_SPEC = BearingSpec.from_geometry("synthetic 8-ball", 8, 12.7, 60.0, 0.0)
+SYN_SPEC = spec_from_geometry("synthetic 8-ball", 8, 12.7, 60.0, 0.0)
 
 
 def snr_sweep(

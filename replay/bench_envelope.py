@@ -24,7 +24,7 @@ ROOT = Path(__file__).resolve().parents[1]
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
-from agent.bearings import BearingSpec, diagnose_bearings  # noqa: E402
+from agent.bearings import diagnose_bearings, spec_from_geometry  # noqa: E402
 from agent.envelope import envelope_spectrum  # noqa: E402
 from replay.bearing_signals import bearing_fault_signal  # noqa: E402
 
@@ -44,7 +44,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--repeat", type=int, default=50)
     args = ap.parse_args(argv)
     fs, n, speed = 25600.0, 65536, 25.0
-    spec = BearingSpec.from_geometry("bench", 8, 12.7, 60.0, 0.0)
+    spec = spec_from_geometry("bench", 8, 12.7, 60.0, 0.0)
     x = bearing_fault_signal("outer", -9.0, spec.orders, seed=1, fs_hz=fs, n=n, speed_hz=speed)
     fmin = 4 * spec.orders.bpfi * speed
     env = _times(lambda: envelope_spectrum(x, fs, fmin_hz=fmin, min_bandwidth_hz=fmin, fmax_hz=0.45 * fs),

@@ -14,7 +14,7 @@ from agent.bearings import (
     CODES,
     UNASSIGNED_CODE,
     BearingSettings,
-    BearingSpec,
+    spec_from_geometry,
     diagnose_bearings,
     envelope_views,
     score_bearing,
@@ -25,7 +25,7 @@ from replay.bearing_signals import bearing_fault_signal
 
 FS = 25600.0
 SPEED = 25.0
-SPEC = BearingSpec.from_geometry("pump drive end", 8, 12.7, 60.0, 0.0)
+SPEC = spec_from_geometry("pump drive end", 8, 12.7, 60.0, 0.0)
 
 
 @pytest.mark.parametrize("defect", ["outer", "inner", "ball"])
@@ -125,7 +125,7 @@ def test_bad_arguments_are_refused():
     with pytest.raises(ValueError, match="n_harmonics"):
         BearingSettings(n_harmonics=0)
     with pytest.raises(ValueError, match="balls"):
-        BearingSpec.from_geometry("x", 2, 5.0, 30.0)
+        spec_from_geometry("x", 2, 5.0, 30.0)
 
 
 # ---------------------------------------------------------------- configuration
@@ -140,19 +140,21 @@ def _cfg(machine_extra=None, analysis=None):
 
 
 def test_specs_from_config_use_geometry_or_the_makers_multipliers():
-    from agent.bearings import settings_from_config, specs_from_config
+    from agent.bearings import settings_from_config, specs_by_shaft
 
     cfg = _cfg()
-    (spec,) = specs_from_config(cfg.machine.bearings)
+    ((ratio, (spec,)),) = specs_by_shaft(cfg.machine).values()
+    assert ratio == 1.0
     # 6205: 9 balls, 7.94 mm on 39.04 mm → BPFO 3.5848, BPFI 5.4152 (CWRU bearing page; REFERENCES.md §3)
     assert spec.name == "motor DE"
     assert spec.orders.bpfo == pytest.approx(3.5848, abs=2e-3)
     assert spec.orders.bpfi == pytest.approx(5.4152, abs=2e-3)
-    (spec,) = specs_from_config(_cfg({"bpfo": 3.6, "ftf": 0.4}).machine.bearings)
+    ((_, (spec,)),) = specs_by_shaft(_cfg({"bpfo": 3.6, "ftf": 0.4}).machine).values()
     assert spec.orders.bpfo == 3.6 and spec.orders.ftf == 0.4
     assert spec.orders.bpfi == pytest.approx(5.4152, abs=2e-3)  # not given: from geometry
     st = settings_from_config(cfg.analysis)
     assert st.band_hz is None and st.slip_tol == 0.02
+    assert settings_from_config(cfg.analysis, cfg.machine).line_hz == 50.0  # config default supply
     st = settings_from_config(_cfg(analysis={"envelope_band_hz": [2000.0, 5000.0], "bearing_slip_tol": 0.015}).analysis)
     assert st.band_hz == (2000.0, 5000.0) and st.slip_tol == 0.015
 
@@ -210,3 +212,23 @@ def test_short_capture_gives_no_verdict_rather_than_an_error():
     # 0.4 s: too short for a kurtogram band of the required width, the full band still works
     f = diagnose_bearings(x[:10240], FS, SPEED, (SPEC,))
     assert f and f[0].code == CODES["outer"]
+
+
+def test_bearing_on_a_belt_driven_shaft_is_searched_at_that_shafts_speed():
+    from agent.bearings import bearing_findings
+    from agent.config import parse_config
+
+    # belt ratio = driver / driven sheave diameter = 150 / 300: the fan turns at half the motor speed
+    cfg = parse_config(
+        {"machine": {
+            "shafts": [{"name": "fan"}],
+            "belts": [{"driver": "motor", "driven": "fan", "driver_diameter_mm": 150.0, "driven_diameter_mm": 300.0}],
+            "bearings": [{"name": "fan bearing", "shaft": "fan", "balls": 8, "ball_diameter_mm": 12.7,
+                          "pitch_diameter_mm": 60.0}],
+        }},
+        "t.toml",
+    )
+    x = bearing_fault_signal("outer", -6.0, SPEC.orders, seed=13, speed_hz=12.5)
+    (f,) = bearing_findings(x, FS, 25.0, cfg.machine, cfg.analysis)  # 25 Hz = motor (reference) speed
+    assert f.code == CODES["outer"] and f.component == "fan bearing"
+    assert f.evidence[0]["freq_hz"] == pytest.approx(SPEC.orders.bpfo * 12.5, rel=0.02)
