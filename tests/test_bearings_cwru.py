@@ -51,8 +51,8 @@ def test_speed_is_the_agents_own(cwru):
     found = [r for r in cwru.values() if r.speed_hz > 0]
     assert len(found) >= 20
     for r in found:
-        if r.speed_source == "estimated":
-            assert r.speed_hz == pytest.approx(r.file_speed_hz, rel=0.002), r.record
+        assert r.speed_source == "estimated"
+        assert r.speed_hz == pytest.approx(r.file_speed_hz, rel=0.002), r.record
 
 
 @pytest.mark.parametrize(
