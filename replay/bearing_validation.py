@@ -282,18 +282,27 @@ def render(rows: list[RecordResult], ims: list[dict], sweep: dict, elapsed_s: fl
     a("agent reports with no bearing geometry configured (\"probable bearing tone at N.NN × shaft speed\");")
     a("the 6205's kinematic orders are BPFO 3.585, BPFI 5.415, 2×BSF 4.714.")
     a("")
+    wrong_scores = [(v, d, r.record, r.sr_best or "baseline") for r in rows if not r.correct
+                    for d, v in r.scores.items() if d != r.truth]
+    top_wrong = max(wrong_scores) if wrong_scores else (0.0, "-", "-", "")
+    second = [(v, d, r.record) for r in rows if r.correct for d, v in r.scores.items() if d != r.truth]
+    top_second = max(second) if second else (0.0, "-", "-")
+    conf_of = {r.record: r.confidence for r in rows}
     a("### Notes")
     a("")
     a("* Compared with the benchmark: every record it rates Y is called right except 197 (outer race,")
     a("  0.014 in, 0 hp), which the benchmark found only with its third method (discrete/random")
     a("  separation + spectral-kurtosis band; its envelope methods 1 and 2 gave N1). Our pre-whitened")
     a("  envelope shows no BPFO family there in any band. The P and N records give no call, and no")
-    a("  record gets a wrong call; the wrong-defect scores stay below 0.5 (highest: cage 0.46 on 186,")
-    a("  a ball fault the benchmark rates P2).")
+    a("  record gets a wrong call. On the records without a right call the highest score for a wrong")
+    a(f"  defect is {top_wrong[1]} {top_wrong[0]:.2f} on {top_wrong[2]} ({top_wrong[3]}). Where one defect is")
+    a("  strong, the rich envelope lets other families score high after it is set aside (up to")
+    a(f"  {top_second[1]} {top_second[0]:.2f} on {top_second[2]}), but only the winning family is called.")
     a("* 174 (48 kHz, 1.3 s, rated N1) gets no verdict: the speed stage finds no credible running speed")
     a("  in it, and without speed there are no bearing frequencies to look for.")
     a("* The ball records are the hard ones, as in the benchmark: 222 and 223 are called from one")
-    a("  slip-smeared 2×BSF hump (223 at 0.53, just above the call threshold).")
+    a(f"  slip-smeared 2×BSF hump (222 at {conf_of.get('222', 0):.2f}, 223 at {conf_of.get('223', 0):.2f};"
+      " the call threshold is 0.5).")
     a("* The detector's thresholds are general (module docstring of `agent/bearings.py`), but they were")
     a("  settled with these records in view; recordings from other rigs are the real test.")
     a("")
