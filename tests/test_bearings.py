@@ -232,3 +232,16 @@ def test_bearing_on_a_belt_driven_shaft_is_searched_at_that_shafts_speed():
     (f,) = bearing_findings(x, FS, 25.0, cfg.machine, cfg.analysis)  # 25 Hz = motor (reference) speed
     assert f.code == CODES["outer"] and f.component == "fan bearing"
     assert f.evidence[0]["freq_hz"] == pytest.approx(SPEC.orders.bpfo * 12.5, rel=0.02)
+
+
+def test_supply_frequency_modulation_is_not_a_bearing_tone_when_line_hz_is_known():
+    # magnetic forces modulate the envelope at 2×LF and its harmonics (100, 200, 300 Hz on 50 Hz
+    # mains; common practice): a non-synchronous family at 24.3 Hz shaft speed unless masked
+    rng = np.random.default_rng(1)
+    t = np.arange(65536) / FS
+    mod = 1 + 0.6 * np.cos(2 * np.pi * 100 * t) + 0.4 * np.cos(2 * np.pi * 200 * t) + 0.3 * np.cos(2 * np.pi * 300 * t)
+    x = mod * np.convolve(rng.standard_normal(t.size), np.hanning(9), "same") + 0.2 * rng.standard_normal(t.size)
+    unmasked = diagnose_bearings(x, FS, 24.3, ())
+    assert unmasked and unmasked[0].extra["order"] == pytest.approx(100 / 24.3, rel=0.01)
+    assert diagnose_bearings(x, FS, 24.3, (), BearingSettings(line_hz=50.0)) == ()
+    assert diagnose_bearings(x, FS, 24.3, (SPEC,), BearingSettings(line_hz=50.0)) == ()
