@@ -233,8 +233,8 @@ def _family(
 
 def _sidebands(
     h: np.ndarray, df: float, harmonics: list[tuple[int, float, float]], spacing_hz: float, thr: float
-) -> list[tuple[str, float, float]]:
-    """Sidebands at ±spacing around the harmonics that were found (height ≥ thr)."""
+) -> list[tuple[int, str, float, float]]:
+    """Sidebands (harmonic k, "-"/"+", freq, height) at ±spacing around the harmonics found (height ≥ thr)."""
     out = []
     for k, f, hk in harmonics:
         if hk < thr:
@@ -244,7 +244,7 @@ def _sidebands(
             if fs <= 0:
                 continue
             i, hs = _line_near(h, df, fs, max(1, int(round(0.005 * fs / df))))
-            out.append((f"{tag}", i * df, hs))
+            out.append((int(k), tag, i * df, hs))
     return out
 
 
@@ -274,7 +274,6 @@ def _score_defect(
     """
     df = ses.bin_width_hz
     fmax = min(float(ses.f_hz[-1]), 0.8 * (ses.band_hz[1] - ses.band_hz[0]))
-    label = _LABEL[defect]
     scale = sigma_scale
     f0, harms = _family(h, df, order * speed_hz, st.slip_tol, st.n_harmonics, fmax, thr)
     score = 0.0
@@ -294,12 +293,12 @@ def _score_defect(
     if defect in ("inner", "ball", "ball1") and n_h:
         spacing = speed_hz if defect == "inner" else ftf_order * speed_hz
         sb_label = "1X" if defect == "inner" else "FTF"
-        for tag, f, hs in _sidebands(h, df, [x for x in harms if x[0] <= 3], spacing, thr):
+        for k, tag, f, hs in _sidebands(h, df, [x for x in harms if x[0] <= 3], spacing, thr):
             if hs >= thr:
                 n_sb += 1
                 score += 0.5 * min(scale * (hs - thr), 15.0)
                 evidence.append(
-                    {"freq_hz": round(float(f), 3), "label": f"{label} {tag}{sb_label} sideband",
+                    {"freq_hz": round(float(f), 3), "label": f"{_harmonic_label(defect, k)} {tag}{sb_label} sideband",
                      "height_db": round(hs, 1), "spectrum": f"envelope ({view})"}
                 )
     # a lone line is weak evidence: at least two family members or one very strong fundamental

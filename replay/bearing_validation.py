@@ -27,7 +27,14 @@ ROOT = Path(__file__).resolve().parents[1]
 if str(ROOT) not in sys.path:  # run as a script from anywhere
     sys.path.insert(0, str(ROOT))
 
-from agent.bearings import CODES, BearingSettings, diagnose_bearings, spec_from_geometry, envelope_views, score_bearing  # noqa: E402
+from agent.bearings import (  # noqa: E402
+    CODES,
+    BearingSettings,
+    diagnose_bearings,
+    envelope_views,
+    score_bearing,
+    spec_from_geometry,
+)
 from agent.recordings import read_recording  # noqa: E402
 from agent.speed import estimate_speed, speed_spectrum  # noqa: E402
 from replay.bearing_signals import bearing_fault_signal  # noqa: E402
@@ -267,7 +274,8 @@ def render(rows: list[RecordResult], ims: list[dict], sweep: dict, elapsed_s: fl
     a("")
     a("### Per record")
     a("")
-    a("| record | fs | truth | size in | load hp | benchmark | speed Hz (file) | speed source | call | confidence | stage | scores (outer/inner/ball/cage) | no geometry: tone × shaft |")
+    a("| record | fs | truth | size in | load hp | benchmark | speed Hz (file) | speed source | call | confidence "
+      "| stage | scores (outer/inner/ball/cage) | no geometry: tone × shaft |")
     a("|---|---|---|---|---|---|---|---|---|---|---|---|---|")
     for r in rows:
         sc = "/".join(f"{r.scores.get(d, 0):.2f}" for d in ("outer", "inner", "ball", "cage")) if r.scores else "-"
