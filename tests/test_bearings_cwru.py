@@ -103,7 +103,7 @@ def test_ims_healthy_snapshots_have_no_bearing_finding(data):
 
 def test_confusion_table_renders(cwru):
     doc = bv.render(list(cwru.values()), [], {(0, "outer"): (1, 0, 1), (0, "inner"): (1, 0, 1),
-                                               (0, "ball"): (1, 0, 1), (0, "none"): (0, 0, 1)}, 1.0)
+                                               (0, "ball"): (1, 0, 1), (0, "none"): (0, 0, 1)})
     assert "| truth \\ call |" in doc
     assert "| 135 | 48k | outer race |" in doc
 
