@@ -245,3 +245,20 @@ def test_supply_frequency_modulation_is_not_a_bearing_tone_when_line_hz_is_known
     assert unmasked and unmasked[0].extra["order"] == pytest.approx(100 / 24.3, rel=0.01)
     assert diagnose_bearings(x, FS, 24.3, (), BearingSettings(line_hz=50.0)) == ()
     assert diagnose_bearings(x, FS, 24.3, (SPEC,), BearingSettings(line_hz=50.0)) == ()
+
+
+def test_simulated_pump_skid_bearing_faults_are_called():
+    # the machine simulator's own impact trains (agent/simulator.py) on a machine with a line family,
+    # vane pass and rotor bars; 0.01 g impacts are about 35 dB below the machine's whole-band power
+    from agent.simulator import BearingDefect, Faults, OperatingPoint, SimBearing, SimMachine, synthesize
+
+    machine = SimMachine(bearings=(SimBearing("pump DE", 8, 12.7, 60.0),))
+    point = OperatingPoint(speed_hz=24.6, line_hz=50.0)
+    st = BearingSettings(line_hz=50.0)
+    for defect in ("outer", "inner", "ball"):
+        x, truth = synthesize(machine, point, Faults(bearings=(BearingDefect("pump DE", defect, 0.01),)),
+                              FS, 65536, seed=21)
+        found = diagnose_bearings(x, FS, 24.6, (SPEC,), st)
+        assert found and found[0].code == CODES[defect], (defect, found)
+    healthy, _ = synthesize(machine, point, Faults(), FS, 65536, seed=21)
+    assert diagnose_bearings(healthy, FS, 24.6, (SPEC,), st) == ()
