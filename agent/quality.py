@@ -14,8 +14,12 @@ Problem codes, in the order they are reported:
   just below it — a smooth waveform, even a quantised sine, has the
   opposite).
 * ``bias_out_of_range`` — measured IEPE bias outside the healthy window
-  (sources that can see it), or a DC offset above ``max_dc_fraction`` of
-  full scale.
+  (sources that can see it), a DC offset above ``max_dc_fraction`` of full
+  scale, or a baseline that drifts within the capture (range of segment
+  means above ``max_drift_ratio`` × the AC level; healthy CWRU/IMS data
+  reach 0.32). A constant offset alone is not flagged when the range is
+  unknown: some data acquisition systems add one (IMS data: |mean| up to
+  1.6 × the AC level).
 * ``ski_slope`` — low-frequency rise of the velocity spectrum: more than
   ``ski_max_low_db`` of the acceleration r.m.s. lies in ``ski_low_band_hz``
   (below the machine's running speed), which after division by 2πf
@@ -79,6 +83,7 @@ class QualityLimits:
     min_distinct_values: int = 5
     bias_v: tuple[float, float] = (8.0, 14.0)  # healthy IEPE bias window (config sensor.bias_v)
     max_dc_fraction: float = 0.25  # |mean| as a fraction of full scale
+    max_drift_ratio: float = 0.75  # range of segment means ÷ AC r.m.s. within segments (healthy data ≤ 0.32)
     ski_low_band_hz: tuple[float, float] = (1.0, 5.0)  # keep below half the lowest running speed
     ski_ref_band_hz: tuple[float, float] = (10.0, 1000.0)  # velocity reference (ISO 10-1000 Hz band)
     ski_max_low_db: float = -20.0  # low-band share of the acceleration r.m.s. (see ski_figures)
@@ -138,6 +143,26 @@ def limits_from_config(cfg) -> QualityLimits:
         ski_low_band_hz=(min(1.0, ski_hi / 2.0), ski_hi),
         nominal_fs_hz=cfg.source.fs_hz if cfg.source.kind in ("soundcard", "serial") else None,
     )
+
+
+def _baseline_drift(x: np.ndarray, fs_hz: float, limits: QualityLimits) -> tuple[float, float] | None:
+    """(range of segment means, that range ÷ r.m.s. within segments); None if too short.
+
+    Segments last at least 2 periods of the ski band's upper edge (so a
+    machine tone above it, which lies at ≥ 2× that edge, averages out) and
+    at least a tenth of the capture; at least 3 are needed.
+    """
+    seg_n = max(x.size // 10, int(math.ceil(2.0 * fs_hz / limits.ski_low_band_hz[1])))
+    k = x.size // seg_n
+    if k < 3:
+        return None
+    segs = x[: k * seg_n].reshape(k, seg_n)
+    means = segs.mean(axis=1)
+    within = float(np.sqrt(np.mean((segs - means[:, None]) ** 2)))
+    if within == 0.0:
+        return None
+    span = float(means.max() - means.min())
+    return span, span / within
 
 
 def _longest_run(mask: np.ndarray) -> int:
@@ -275,6 +300,17 @@ def check_capture(
             flag("bias_out_of_range", f"sensor bias {capture.bias_v:.2f} V outside [{lo:g}, {hi:g}] V ({what})")
     if ranges and abs(mean) > limits.max_dc_fraction * min(ranges):
         flag("bias_out_of_range", f"DC offset {mean:.3g} m/s² is {abs(mean) / min(ranges):.0%} of full scale")
+    if "flatline" not in problems:
+        drift = _baseline_drift(x, fs, limits)
+        if drift is not None:
+            span, ratio = drift
+            figures["drift_ratio"] = ratio
+            if ratio > limits.max_drift_ratio:
+                flag(
+                    "bias_out_of_range",
+                    f"baseline drifts by {span:.3g} m/s² within the capture ({ratio:.1f}× the AC level): "
+                    "sensor bias drifting or cable fault",
+                )
 
     # ski slope
     if "flatline" not in problems:

@@ -271,3 +271,58 @@ def test_monitor_step_turns_a_failed_capture_into_sensor_fault():
     assert res.findings == () and res.analysis is None  # no machine judgement from bad data
     assert ms2.last_speed_hz == ms.last_speed_hz  # nothing learned
     assert res.events and res.events[0]["state"] == "sensor_fault"
+
+
+# ── the machine simulator: sensor faults flagged, machine faults not ──
+
+SIM_FS, SIM_N = 25600.0, 65536
+
+
+def _sim(faults, seed=1, point=None):
+    from agent.simulator import OperatingPoint, SimBearing, SimMachine, synthesize
+
+    # an invented bearing of 6310-like proportions
+    machine = SimMachine(bearings=(SimBearing("pump_de", balls=8, ball_diameter_mm=22.2, pitch_diameter_mm=80.0),))
+    x, _ = synthesize(machine, point or OperatingPoint(True, 29.5), faults, SIM_FS, SIM_N, seed=seed)
+    return check_capture(_cap(x, SIM_FS))
+
+
+@pytest.mark.parametrize(
+    "kind, level_g, code",
+    [
+        ("flatline", 0.0, "flatline"),
+        ("flatline", 0.3, "flatline"),
+        ("clipping", 0.05, "clipped"),
+        ("dropout", 0.1, "dropout"),
+        ("dropout", 0.01, "dropout"),
+        ("bias_drift", 0.5, "bias_out_of_range"),
+        ("bias_drift", 0.1, "bias_out_of_range"),
+        ("intermittent", 20.0, "dropout"),
+        ("intermittent", 2.0, "dropout"),
+    ],
+)
+def test_every_simulated_sensor_fault_is_flagged(kind, level_g, code):
+    from agent.simulator import Faults, SensorFault
+
+    v = _sim(Faults(sensor=(SensorFault(kind, level_g),)))
+    assert code in v.problems, (kind, v.reasons, dict(v.figures))
+
+
+def test_simulated_machine_faults_are_not_sensor_faults():
+    """Healthy and faulty machines (the faults are in the machine, the sensor is sound) pass:
+    false-flag rate 0 over these captures."""
+    from agent.simulator import BearingDefect, Faults, OperatingPoint
+
+    brg = "pump_de"
+    cases = [
+        Faults(),
+        Faults(unbalance_mm_s=8.0),
+        Faults(misalignment_mm_s=5.0, looseness_mm_s=3.0),
+        Faults(cavitation_g=0.5),
+        Faults(bearings=(BearingDefect(brg, "outer", 2.0, stage=3),)),
+    ]
+    points = [OperatingPoint(True, 29.5), OperatingPoint(True, 12.0), OperatingPoint(True, 20.0, 30.0),
+              OperatingPoint(False, 0.0)]
+    flagged = [(i, j, seed, v.reasons) for i, f in enumerate(cases) for j, p in enumerate(points) for seed in (1, 2)
+               if not (v := _sim(f, seed, p)).ok]
+    assert flagged == []

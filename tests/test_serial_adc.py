@@ -242,3 +242,23 @@ def test_serial_from_config_and_validation():
     text = str(err.value)
     assert "source.serial.channels" in text and "source.serial.mode" in text
     assert "source.serial.max_frame_samples" in text
+
+
+def test_pause_between_reads_starts_a_fresh_capture():
+    # the daemon reads once per interval: what piles up meanwhile is stale, not a gap
+    clock = {"t": 1000.0 - time.monotonic()}
+    src = _loop_source(channels=1, n_samples=50, clock=lambda: clock["t"] + time.monotonic())
+    blocks = [np.full(25, k) for k in range(10)]
+    for seq in range(3):
+        src._ser.write(encode_frame(seq, blocks[seq]))
+    (c1,) = src.read(1.0)
+    src._ser.write(encode_frame(3, blocks[3]))  # stale: arrived while nobody read
+    clock["t"] += 60.0  # a minute later; frames 4..6 were lost in an overflowing buffer
+    later = encode_frame(7, blocks[7]) + encode_frame(8, blocks[8])
+    threading.Timer(0.1, src._ser.write, args=(later,)).start()
+    t_read = clock["t"] + time.monotonic()
+    (c2,) = src.read(2.0)
+    assert c1.flags == c2.flags == frozenset()
+    assert src.flushes == 1 and src.parser.lost_frames == 0
+    assert np.unique(c2.accel_ms2 / src.calibration.ms2_per_count).tolist() == [7, 8]
+    assert t_read < c2.t0_utc_s + 50 / 1000.0 < t_read + 1.0

@@ -329,3 +329,26 @@ def test_soundcard_from_config():
     # 2 V full scale ÷ gain 2 = 1 V at the sensor; 50 mV/g → 20 g
     assert src.calibration.full_scale_ms2 == pytest.approx(20 * STANDARD_GRAVITY_MS2)
     assert stall_timeout_s(cfg) == 3.0
+
+
+def test_pause_between_reads_starts_a_fresh_capture():
+    clock = {"t": 50.0}
+    src = SoundCardSource(None, fs_hz=1000, n_samples=100, queue_blocks=4, clock=lambda: clock["t"])
+    src._stream = _FakeStream()
+
+    def cb(value):
+        src._callback(np.full((50, 1), value / 100, dtype=np.float32), 50, None, _status(False))
+
+    cb(0)
+    cb(1)
+    (c1,) = src.read(0.1)
+    for v in range(2, 10):  # a minute of blocks while nobody reads: queue full, drops
+        cb(v)
+    clock["t"] += 60.0
+    assert src.dropped_blocks > 0
+    # the reader drains the stale blocks first; blocks arriving after that make the capture
+    threading.Timer(0.05, lambda: (cb(20), cb(21))).start()
+    (c2,) = src.read(2.0)
+    assert c1.flags == c2.flags == frozenset()
+    assert np.round(np.unique(c2.accel_ms2 / src.calibration.ms2_per_count) * 100).tolist() == [20, 21]
+    assert src.flushes == 1

@@ -55,6 +55,8 @@ class SerialSource(Source):
         source_id: str = "serial",
         fs_tolerance: float = 0.02,
         max_frame_samples: int = 1024,
+        stall_timeout_s: float | None = None,
+        idle_flush_s: float = 1.0,
         read_chunk: int = 4096,
         clock: Callable[[], float] = time.time,
     ):
@@ -83,7 +85,11 @@ class SerialSource(Source):
         self.source_id = source_id
         self.fs_tolerance = float(fs_tolerance)
         self.read_chunk = int(read_chunk)
+        self.stall_timeout_s = stall_timeout_s
+        self.idle_flush_s = float(idle_flush_s)
         self._clock = clock
+        self._last_return: float | None = None
+        self.flushes = 0
         self._ser = None
         self._seq = 0
         self.parser = (
@@ -118,6 +124,7 @@ class SerialSource(Source):
             channel_names=names,
             source_id=f"serial:{sc.port}",
             max_frame_samples=sc.max_frame_samples,
+            stall_timeout_s=sc.stall_timeout_s,
         )
 
     # ── Source interface ──
@@ -134,6 +141,7 @@ class SerialSource(Source):
         # bytes from before a reconnect cannot be joined to new ones
         self.parser.drop_partial()
         self._rate.restart()
+        self._last_return = None  # opening emptied the input buffer: nothing stale to flush
 
     def close(self) -> None:
         ser, self._ser = self._ser, None
@@ -157,16 +165,28 @@ class SerialSource(Source):
         return d
 
     def read(self, timeout_s: float) -> tuple[Capture, ...]:
-        """Next capture per channel; SourceStalled after ``timeout_s`` without samples."""
+        """Next capture per channel; SourceStalled after ``timeout_s`` without samples.
+
+        Captures follow on from each other when read back to back; after a
+        pause longer than ``idle_flush_s`` (the daemon reads once per
+        ``source.interval_s``) what piled up meanwhile is thrown away and the
+        capture starts with fresh samples, so it holds no stale data and no gap.
+        """
         if self._ser is None:
             raise SourceUnavailable(f"serial port {self.port!r} is not open")
         import serial
 
+        if self.stall_timeout_s is not None:
+            timeout_s = min(timeout_s, self.stall_timeout_s)
         last_data = self._clock()
+        if self._last_return is not None and last_data - self._last_return > self.idle_flush_s:
+            self._flush_stale()
         while True:
             got = self._asm.pop()
             if got is not None:
-                return self._captures(*got)
+                caps = self._captures(*got)
+                self._last_return = self._clock()
+                return caps
             try:
                 data = self._ser.read(self.read_chunk)
             except (serial.SerialException, OSError) as exc:
@@ -179,6 +199,19 @@ class SerialSource(Source):
                 raise SourceStalled(f"serial port {self.port!r}: no samples for {now - last_data:.1f} s")
 
     # ── internals ──
+    def _flush_stale(self) -> None:
+        import serial
+
+        try:
+            self._ser.reset_input_buffer()
+        except (serial.SerialException, OSError) as exc:
+            self.close()
+            raise SourceUnavailable(f"serial port {self.port!r} failed: {exc}") from exc
+        self.parser.restart()
+        self._asm.reset()
+        self._rate.restart()
+        self.flushes += 1
+
     def _ingest(self, data: bytes, now: float) -> bool:
         if not data:
             return False

@@ -165,6 +165,11 @@ class FrameParser:
         self._buf.clear()
         return n
 
+    def restart(self) -> None:
+        """Start afresh on purpose (stale data thrown away): no partial frame, no sequence history."""
+        self._buf.clear()
+        self.last_seq = None
+
     def _skip(self, n: int) -> None:
         del self._buf[:n]
         self.resync_bytes += n
@@ -246,6 +251,9 @@ class TextLineParser:
         self.resync_bytes += n
         self._buf.clear()
         return n
+
+    def restart(self) -> None:
+        self._buf.clear()
 
     def feed(self, data: bytes) -> np.ndarray:
         """Rows parsed from complete lines: float64 array of shape (rows, channels)."""

@@ -65,6 +65,8 @@ class SoundCardSource(Source):
         queue_blocks: int = 256,
         latency: str | float = "high",
         fs_tolerance: float = 0.02,
+        stall_timeout_s: float | None = None,
+        idle_flush_s: float = 1.0,
         clock: Callable[[], float] = time.time,
     ):
         self.device = parse_device(device)
@@ -87,6 +89,10 @@ class SoundCardSource(Source):
         self.source_id = source_id
         self.latency = latency
         self.fs_tolerance = float(fs_tolerance)
+        self.stall_timeout_s = stall_timeout_s
+        self.idle_flush_s = float(idle_flush_s)
+        self._last_return: float | None = None
+        self.flushes = 0
         self._clock = clock
         self._queue: queue.Queue = queue.Queue(maxsize=int(queue_blocks))
         self._stream = None
@@ -130,6 +136,7 @@ class SoundCardSource(Source):
             channel_names=tuple(sc.channel_names) or default_channel_names(src.channel, sc.channels),
             source_id=f"soundcard:{sc.device}",
             queue_blocks=sc.queue_blocks,
+            stall_timeout_s=sc.stall_timeout_s,
         )
 
     # ── Source interface ──
@@ -162,6 +169,7 @@ class SoundCardSource(Source):
             self._asm.reset()
             self._rate.restart()
             self._drain()
+            self._last_return = None
 
     def close(self) -> None:
         with self._lock:
@@ -192,13 +200,28 @@ class SoundCardSource(Source):
         }
 
     def read(self, timeout_s: float) -> tuple[Capture, ...]:
-        """Next capture per channel; SourceStalled after ``timeout_s`` without a block."""
+        """Next capture per channel; SourceStalled after ``timeout_s`` without a block.
+
+        Back-to-back reads give contiguous captures; after a pause longer than
+        ``idle_flush_s`` the blocks that piled up (and any drops while the
+        queue was full) are thrown away and the capture starts fresh.
+        """
         if self._stream is None:
             raise SourceUnavailable(f"sound device {self.device!r} is not open")
+        if self.stall_timeout_s is not None:
+            timeout_s = min(timeout_s, self.stall_timeout_s)
+        if self._last_return is not None and self._clock() - self._last_return > self.idle_flush_s:
+            self._pending_drops = 0
+            self._drain()
+            self._asm.reset()
+            self._rate.restart()
+            self.flushes += 1
         while True:
             got = self._asm.pop()
             if got is not None:
-                return self._captures(*got)
+                caps = self._captures(*got)
+                self._last_return = self._clock()
+                return caps
             try:
                 block, overflow, drops = self._queue.get(timeout=timeout_s)
             except queue.Empty:
