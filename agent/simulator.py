@@ -595,9 +595,10 @@ def synthesize(
                                        accel_rms_ms2=a * machine.rotor_bar_sideband_ratio))
         if machine.belt_ratio > 0 and faults.belt_wear_mm_s > 0:
             br = machine.belt_ratio
+            belt0 = _rng(seed, "belt").uniform(0, 2 * np.pi)  # the belt's own angle: not locked to the shaft
             for h, rel in BELT_ORDERS.items():
                 tones.append(_Tone(f"{h:g}xBelt", "belt", h * br * s0, h * br * s1,
-                                   h * br * theta0 * 3.1, vel_rms_mm_s=faults.belt_wear_mm_s * rel))
+                                   h * belt0, vel_rms_mm_s=faults.belt_wear_mm_s * rel))
         for d in faults.bearings:
             if d.impulse_g <= 0 and d.tone_mm_s <= 0:
                 continue
