@@ -98,6 +98,10 @@ def _sim_tag(truth: dict | None) -> str:
     return ", ".join(parts) or "healthy"
 
 
+def _mm_s(v: float) -> str:
+    return f"{v:5.2f} mm/s" if v == v else "   -- mm/s"  # NaN: no usable capture
+
+
 def _bar(done: int, total: int, width: int = 20) -> str:
     k = int(width * done / max(total, 1))
     return "[" + "#" * k + "." * (width - k) + "]"
@@ -174,7 +178,7 @@ def run_demo(out_dir: str | Path = "demo-out", *, jobs: int | None = None, strea
         when = view.to_json()["t0_utc"].replace("T", " ")[:-4] + "Z"
         n = view.seq + 1
         console.status(f"{_bar(n, total)} {n:3d}/{total}  {when}  {speed}  {view.state}  "
-                       f"{view.vel_rms_mm_s:5.2f} mm/s  latest finding: {latest['finding']}"
+                       f"{_mm_s(view.vel_rms_mm_s)}  latest finding: {latest['finding']}"
                        f"  | sim: {_sim_tag(view.truth)}", n, total)
 
     try:

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import sys
 import time
 from dataclasses import dataclass, field
@@ -50,10 +51,10 @@ class StepView:
             "file": Path(self.path).name,
             "state": self.state,
             "reason": self.reason,
-            "vel_rms_mm_s": round(self.vel_rms_mm_s, 4),
+            "vel_rms_mm_s": _rounded(self.vel_rms_mm_s, 4),
             "zone": self.zone,
-            "kurtosis": round(self.kurtosis, 3),
-            "crest_factor": round(self.crest_factor, 3),
+            "kurtosis": _rounded(self.kurtosis, 3),
+            "crest_factor": _rounded(self.crest_factor, 3),
             "speed_rpm": None if self.speed_hz is None else round(self.speed_hz * 60.0, 1),
             "findings": [f.to_json() for f in self.findings],
         }
@@ -76,6 +77,11 @@ class ReplayResult:
         if len(self.steps) < 2:
             return self.signal_s
         return self.steps[-1].t0_utc_s - self.steps[0].t0_utc_s + self.signal_s / len(self.steps)
+
+
+def _rounded(x: float, nd: int) -> float | None:
+    """A figure for JSON: rounded, or null when the capture gave none (NaN)."""
+    return round(x, nd) if math.isfinite(x) else None
 
 
 def _utc(t: float) -> str:

@@ -358,17 +358,22 @@ def _order_label(order: float) -> str:
 
 
 def ringing(drive: np.ndarray, ring: Resonance, fs_hz: float) -> np.ndarray:
-    """Each sample of ``drive`` rings ``ring``: drive ∗ h with h[k] = r^k·sin(k·θ).
+    """Each sample of ``drive`` rings ``ring``: drive ∗ h with h[k] = r^k·sin(k·θ + φ).
 
-    h is the damped sinusoid exp(−ζω_n t)·sin(ω_d t) sampled at t = k/fs
-    (r = exp(−ζω_n/fs), θ = ω_d/fs), so a unit impulse gives a ringing of
-    unit envelope at t = 0. Realised as the two-pole recursion
-    y[k] = 2r·cos θ·y[k−1] − r²·y[k−2] + r·sin θ·drive[k−1].
+    h is a damped sinusoid exp(−ζω_n t)·sin(ω_d t + φ) sampled at t = k/fs
+    (r = exp(−ζω_n/fs), θ = ω_d/fs) with unit envelope at t = 0. The phase
+    φ = atan2(−r·sin θ, 1 − r·cos θ) makes Σh = 0: like the accelerance of a
+    resonance (∝ f² below it), an impact then puts no energy at low
+    frequencies — stage 1 is high-frequency only. The envelope, and so the
+    logarithmic decrement between successive peaks, is that of the free
+    decay. Realised as the two-pole recursion
+    y[k] = 2r·cos θ·y[k−1] − r²·y[k−2] + sin φ·drive[k] + r·sin(θ − φ)·drive[k−1].
     """
     wn = 2 * np.pi * ring.freq_hz
     r = np.exp(-ring.damping * wn / fs_hz)
     th = wn * np.sqrt(1 - ring.damping**2) / fs_hz
-    return signal.lfilter([0.0, r * np.sin(th)], [1.0, -2 * r * np.cos(th), r * r], drive)
+    phi = np.arctan2(-r * np.sin(th), 1 - r * np.cos(th))
+    return signal.lfilter([np.sin(phi), r * np.sin(th - phi)], [1.0, -2 * r * np.cos(th), r * r], drive)
 
 
 
@@ -595,9 +600,10 @@ def synthesize(
                                        accel_rms_ms2=a * machine.rotor_bar_sideband_ratio))
         if machine.belt_ratio > 0 and faults.belt_wear_mm_s > 0:
             br = machine.belt_ratio
+            belt0 = _rng(seed, "belt").uniform(0, 2 * np.pi)  # the belt's own angle: not locked to the shaft
             for h, rel in BELT_ORDERS.items():
                 tones.append(_Tone(f"{h:g}xBelt", "belt", h * br * s0, h * br * s1,
-                                   h * br * theta0 * 3.1, vel_rms_mm_s=faults.belt_wear_mm_s * rel))
+                                   h * belt0, vel_rms_mm_s=faults.belt_wear_mm_s * rel))
         for d in faults.bearings:
             if d.impulse_g <= 0 and d.tone_mm_s <= 0:
                 continue

@@ -173,7 +173,16 @@ def test_daemon_path_gives_the_same_states_as_replay(small, tmp_path):
     src = ReplaySource([rec])
     src.open()
     res = run_replay(src, cfg)
-    assert daemon_rows == [(s.t0_utc_s, s.state) for s in res.steps]
+    # trend rows: one per usable capture (a sensor-fault capture is not trended)
+    assert daemon_rows == [(s.t0_utc_s, s.state) for s in res.steps if s.state != "sensor_fault"]
+    # state changes: the daemon snapshots each one; replay shows each one
+    snaps = [json.loads(p.read_text()) for p in (tmp_path / "state" / "snapshots").glob("*/analysis.json")]
+    daemon_changes = {(d["t_utc_s"], d["analysis"]["state"]["state"]) for d in snaps if d["reason"] == "state_change"}
+    replay_changes = {(c["t0_utc_s"], c["to"]) for c in res.changes if c["kind"] == "state" and c["from"]}
+    assert daemon_changes == replay_changes and replay_changes
+    assert any(state == "sensor_fault" for _, state in replay_changes)
+    final = json.loads((tmp_path / "state" / "monitor.json").read_text())
+    assert final["state"] == res.steps[-1].state
 
 
 def test_analyze_command_finds_every_simulated_tone(tmp_path):
