@@ -93,7 +93,7 @@ def test_replay_of_recordings_equals_the_live_simulator_path(small):
     rep = run_replay(played, cfg)
     a = [s.to_json() | {"file": ""} for s in live.steps]
     b = [s.to_json() | {"file": ""} for s in rep.steps]
-    assert json.dumps(a) == json.dumps(b)  # byte for byte (NaN levels of sensor-fault captures included)
+    assert json.dumps(a) == json.dumps(b)  # byte for byte (null levels of sensor-fault captures included)
     assert live.changes == rep.changes
     assert any(c["kind"] == "state" for c in rep.changes)
 
@@ -173,8 +173,8 @@ def test_daemon_path_gives_the_same_states_as_replay(small, tmp_path):
     src = ReplaySource([rec])
     src.open()
     res = run_replay(src, cfg)
-    # trend rows: one per usable capture (a sensor-fault capture is not trended)
-    assert daemon_rows == [(s.t0_utc_s, s.state) for s in res.steps if s.state != "sensor_fault"]
+    # trend rows: one per capture, sensor-fault ones included
+    assert daemon_rows == [(s.t0_utc_s, s.state) for s in res.steps]
     # state changes: the daemon snapshots each one; replay shows each one
     snaps = [json.loads(p.read_text()) for p in (tmp_path / "state" / "snapshots").glob("*/analysis.json")]
     daemon_changes = {(d["t_utc_s"], d["analysis"]["state"]["state"]) for d in snaps if d["reason"] == "state_change"}
