@@ -42,6 +42,7 @@ from agent.model import Capture, MachineState
 from agent.monitor import CaptureResult, MonitorState, initial_state, monitor_step, source_problem_step
 
 QUEUE_CAPTURES = 2
+SAVE_EVERY_CAPTURES = 10
 BEAT_SLICE_S = 1.0   # longest single wait of the acquisition loop (heartbeat period)
 BEAT_SLACK_S = 5.0   # scheduling slack before a silent acquisition counts as hung
 BAD_STATES = (MachineState.ALERT, MachineState.DANGER)
@@ -460,7 +461,9 @@ class Daemon:
                 if self.controls is not None:
                     self.controls.open_alarms.pop(self.open_alarm_id, None)
                 self.open_alarm_id = None
-            if result.state_changed:
+            # state changes at once; otherwise every SAVE_EVERY captures, so a crash while
+            # learning loses at most that much of the learned baseline
+            if result.state_changed or self.health.captures_done % SAVE_EVERY_CAPTURES == 0:
                 self._save_state()
         self._publish(result, snapshot_id)
 
