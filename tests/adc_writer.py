@@ -83,5 +83,30 @@ def main(link: str, log_path: str) -> None:
     Path(log_path).write_text(json.dumps(log))
 
 
+def healthy_frame(seq: int) -> np.ndarray:
+    """A sound machine: 1X 29.5 Hz, 2X, broadband noise, in int16 counts, continuous across frames."""
+    t = (seq * N + np.arange(N)) / FS_HZ
+    x = 3000 * np.sin(2 * np.pi * 29.5 * t) + 1000 * np.sin(2 * np.pi * 59 * t + 1)
+    x = x[:, None] + np.random.default_rng(seq).normal(0, 400, (N, CH))
+    return np.round(x).astype(np.int64)
+
+
+def clean(link: str, seconds: float) -> None:
+    """A healthy board without faults, for runs of the daemon."""
+    fd = os.open(link, os.O_WRONLY | os.O_NOCTTY)
+    t_start = time.monotonic()
+    for seq in range(int(seconds * FS_HZ / N)):
+        delay = t_start + seq * N / FS_HZ - time.monotonic()
+        if delay > 0:
+            time.sleep(delay)
+        try:
+            os.write(fd, encode_frame(seq & 0xFFFF, healthy_frame(seq), FMT_INT16))
+        except OSError:
+            return
+
+
 if __name__ == "__main__":
-    main(sys.argv[1], sys.argv[2])
+    if sys.argv[1] == "--clean":
+        clean(sys.argv[2], float(sys.argv[3]))
+    else:
+        main(sys.argv[1], sys.argv[2])

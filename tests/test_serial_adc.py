@@ -262,3 +262,33 @@ def test_pause_between_reads_starts_a_fresh_capture():
     assert src.flushes == 1 and src.parser.lost_frames == 0
     assert np.unique(c2.accel_ms2 / src.calibration.ms2_per_count).tolist() == [7, 8]
     assert t_read < c2.t0_utc_s + 50 / 1000.0 < t_read + 1.0
+
+
+@pytest.mark.slow
+def test_daemon_runs_on_the_serial_source(tmp_path):
+    """`skidvib run` with source.kind = "serial" against a pty fed at the real rate."""
+    if shutil.which("socat") is None:
+        pytest.skip("needs the Debian package socat")
+    socat = _start_socat(tmp_path)
+    cfg = tmp_path / "agent.toml"
+    cfg.write_text(
+        '[asset]\ntag = "T-1"\n'
+        '[source]\nkind = "serial"\nfs_hz = 8000.0\ncapture_s = 1.0\ninterval_s = 1.0\nchannel = "pump DE"\n'
+        f'[source.serial]\nport = "{tmp_path / "ttyB"}"\nchannels = 2\nfull_scale_v = 2.5\nstall_timeout_s = 3.0\n'
+        '[store]\nstate_dir = "state"\n'
+    )
+    writer = subprocess.Popen([sys.executable, str(ROOT / "tests" / "adc_writer.py"), "--clean",
+                               str(tmp_path / "ttyA"), "20"])
+    try:
+        res = subprocess.run([sys.executable, "-m", "agent", "run", "-c", str(cfg), "--no-mqtt",
+                              "--max-captures", "3"], cwd=ROOT, capture_output=True, text=True, timeout=60)
+    finally:
+        writer.kill()
+        writer.wait(5)
+        socat.terminate()
+        socat.wait(5)
+    assert res.returncode == 0, res.stderr[-3000:]
+    captures = [ln for ln in res.stderr.splitlines() if "event=capture " in ln]
+    assert len(captures) == 3, res.stderr[-3000:]
+    assert "event=source_open" in res.stderr and "kind=serial" in res.stderr
+    assert not any("sensor_fault" in ln for ln in captures), res.stderr[-3000:]

@@ -88,20 +88,20 @@ def pulse_pipe(tmp_path):
 def _feed(fifo: Path, pcm: np.ndarray, stop: threading.Event) -> None:
     """Write int16 stereo frames to the FIFO at real-time pace in 10 ms chunks, looping."""
     chunk = FS // 100
-    with open(fifo, "wb") as f:
-        t_start = time.monotonic()
-        i = 0
-        while not stop.is_set():
-            part = pcm[(i * chunk) % len(pcm) : (i * chunk) % len(pcm) + chunk]
-            try:
+    try:
+        with open(fifo, "wb") as f:
+            t_start = time.monotonic()
+            i = 0
+            while not stop.is_set():
+                part = pcm[(i * chunk) % len(pcm) : (i * chunk) % len(pcm) + chunk]
                 f.write(part.tobytes())
                 f.flush()
-            except BrokenPipeError:
-                return
-            i += 1
-            ahead = t_start + i * chunk / FS - time.monotonic()
-            if ahead > 0:
-                time.sleep(ahead)
+                i += 1
+                ahead = t_start + i * chunk / FS - time.monotonic()
+                if ahead > 0:
+                    time.sleep(ahead)
+    except BrokenPipeError:  # PulseAudio went away first
+        return
 
 
 CAPTURE_SCRIPT = """
@@ -352,3 +352,34 @@ def test_pause_between_reads_starts_a_fresh_capture():
     assert c1.flags == c2.flags == frozenset()
     assert np.round(np.unique(c2.accel_ms2 / src.calibration.ms2_per_count) * 100).tolist() == [20, 21]
     assert src.flushes == 1
+
+
+def test_daemon_runs_on_the_soundcard_source(pulse_pipe, tmp_path):
+    """`skidvib run` with source.kind = "soundcard" through PulseAudio's pipe source."""
+    env, fifo = pulse_pipe
+    t = np.arange(2 * FS) / FS  # a sound machine: 1X 29.5 Hz, 2X, noise; loops every 2 s
+    rng = np.random.default_rng(3)
+    x = 6000 * np.sin(2 * np.pi * 29.5 * t) + 2000 * np.sin(2 * np.pi * 59 * t + 1)
+    pcm = np.round(np.column_stack([x + rng.normal(0, 800, t.size), x + rng.normal(0, 800, t.size)]))
+    pcm = pcm.astype("<i2")
+    stop = threading.Event()
+    feeder = threading.Thread(target=_feed, args=(fifo, pcm, stop), daemon=True)
+    feeder.start()
+    cfg = tmp_path / "agent.toml"
+    cfg.write_text(
+        '[asset]\ntag = "T-2"\n'
+        '[source]\nkind = "soundcard"\nfs_hz = 48000.0\ncapture_s = 1.0\ninterval_s = 1.0\n'
+        '[source.soundcard]\ndevice = "pulse"\nchannels = 2\nfull_scale_v = 2.0\nstall_timeout_s = 3.0\n'
+        '[store]\nstate_dir = "state"\n'
+    )
+    try:
+        res = subprocess.run([sys.executable, "-m", "agent", "run", "-c", str(cfg), "--no-mqtt",
+                              "--max-captures", "3"], cwd=ROOT, env=env, capture_output=True, text=True, timeout=60)
+    finally:
+        stop.set()
+        feeder.join(5)
+    assert res.returncode == 0, res.stderr[-3000:]
+    captures = [ln for ln in res.stderr.splitlines() if "event=capture " in ln]
+    assert len(captures) == 3, res.stderr[-3000:]
+    assert "kind=soundcard" in res.stderr
+    assert not any("sensor_fault" in ln for ln in captures), res.stderr[-3000:]
