@@ -178,6 +178,21 @@ def change_line(c: dict) -> str:
     return f"{t}  #{c['seq']:04d}  - cleared {c['code']}"
 
 
+def _relevant(ev: dict, c: dict) -> bool:
+    """Whether a change the agent showed can answer a scenario event (by kind; not a judgement of right or wrong)."""
+    phase, kind = ev.get("phase", ""), ev.get("kind", "")
+    if c["kind"] == "state":
+        return phase == "ends" or kind != "sensor" or c["to"] == "sensor_fault"
+    if (c["kind"] == "cleared") != (phase == "ends"):
+        return False
+    code, title = c.get("code", ""), c.get("title", "")
+    if kind == "bearing":
+        return code.startswith("bearing") and (c["kind"] == "cleared" or ev.get("bearing", "") in title)
+    if kind == "sensor":
+        return "sensor" in code
+    return kind in code or kind in title.lower()
+
+
 def truth_comparison(res: ReplayResult, events: list[dict], horizon_s: float = float("inf")) -> list[str]:
     """For every fault or sensor event: the first change the agent showed after it.
 
@@ -192,7 +207,7 @@ def truth_comparison(res: ReplayResult, events: list[dict], horizon_s: float = f
         later = [e["t0_utc_s"] for e in story[k + 1 :] if e["t0_utc_s"] > t_ev]
         t_end = min([t_ev + horizon_s] + later[:1])
         hit = next((c for c in res.changes if t_ev <= c["t0_utc_s"] < t_end
-                    and not (c["kind"] == "state" and c["from"] is None)), None)
+                    and not (c["kind"] == "state" and c["from"] is None) and _relevant(ev, c)), None)
         when = ev["utc"].replace("T", " ")[:-4] + "Z"
         if hit is None:
             at = next((st for st in res.steps if st.t0_utc_s >= t_ev), None)

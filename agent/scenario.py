@@ -224,16 +224,18 @@ class Scenario:
                 ev.append({"t_s": op.from_s, "kind": "operation", "what": what})
             prev = op
         for f in self.faults:
-            ev.append({"t_s": f.from_s, "kind": f.kind, "what": f"{f.describe()} begins"})
+            extra = {"bearing": f.bearing, "defect": f.defect} if f.kind == "bearing" else {}
+            ev.append({"t_s": f.from_s, "kind": f.kind, "phase": "begins", "what": f"{f.describe()} begins", **extra})
             for t, s in f.stages:
                 if t > f.from_s:
-                    ev.append({"t_s": t, "kind": f.kind, "what": f"{f.describe()} reaches stage {s}"})
+                    ev.append({"t_s": t, "kind": f.kind, "phase": "grows",
+                               "what": f"{f.describe()} reaches stage {s}", **extra})
             if f.to_s < self.duration_s:
                 how = "ends" if f.kind == "cavitation" else "ends (repaired)"
-                ev.append({"t_s": f.to_s, "kind": f.kind, "what": f"{f.describe()} {how}"})
+                ev.append({"t_s": f.to_s, "kind": f.kind, "phase": "ends", "what": f"{f.describe()} {how}", **extra})
         for s in self.sensor_faults:
-            ev.append({"t_s": s.from_s, "kind": "sensor", "what": f"sensor fault ({s.kind}) begins"})
-            ev.append({"t_s": s.to_s, "kind": "sensor", "what": f"sensor fault ({s.kind}) ends"})
+            ev.append({"t_s": s.from_s, "kind": "sensor", "phase": "begins", "what": f"sensor fault ({s.kind}) begins"})
+            ev.append({"t_s": s.to_s, "kind": "sensor", "phase": "ends", "what": f"sensor fault ({s.kind}) ends"})
         ev.sort(key=lambda e: e["t_s"])
         for e in ev:
             e["day"] = e["t_s"] / 86400.0

@@ -217,3 +217,25 @@ def test_replay_source_reads_other_formats(tmp_path):
     b = src.read(1.0)[0]
     assert (a.seq, b.seq) == (0, 1) and a.fs_hz == 4096.0
     assert np.std(a.accel_ms2) == pytest.approx(0.1 * 9.80665, rel=0.05)  # g → m/s² (ISO 80000-3)
+
+
+def test_truth_comparison_matches_changes_of_the_right_kind():
+    from agent.replay_cmd import ReplayResult, truth_comparison
+
+    ev = [
+        {"t0_utc_s": 100.0, "utc": "2026-01-01T00:01:40Z", "kind": "bearing", "phase": "begins",
+         "bearing": "pump DE", "what": "outer defect on bearing 'pump DE' begins"},
+        {"t0_utc_s": 500.0, "utc": "2026-01-01T00:08:20Z", "kind": "sensor", "phase": "begins",
+         "what": "sensor fault (intermittent) begins"},
+    ]
+    changes = [
+        {"t0_utc_s": 200.0, "seq": 1, "kind": "finding", "code": "bearing_inner_race", "severity": "watch",
+         "title": "motor DE: inner race defect"},  # another bearing: not an answer
+        {"t0_utc_s": 300.0, "seq": 2, "kind": "finding", "code": "bearing_outer_race", "severity": "watch",
+         "title": "pump DE: outer race defect"},
+        {"t0_utc_s": 600.0, "seq": 3, "kind": "state", "from": "normal", "to": "alert", "reason": "x"},
+        {"t0_utc_s": 700.0, "seq": 4, "kind": "state", "from": "alert", "to": "sensor_fault", "reason": "dropout"},
+    ]
+    lines = truth_comparison(ReplayResult(changes=changes), ev)
+    assert "bearing_outer_race" in lines[0] and "after   0.1 h" in lines[0]
+    assert "sensor_fault: dropout" in lines[1]
