@@ -191,12 +191,18 @@ def run_demo(out_dir: str | Path = "demo-out", *, jobs: int | None = None, strea
     for text in summary:
         console.line(text)
     (out / "replay.log").write_text("\n".join(log_lines + [""] + summary) + "\n", encoding="utf-8")
+    from agent.report import write_replay_reports
+
+    console.line("Writing a report for each state change and a final one ...")
+    reports = write_replay_reports(res, cfg, out / "reports")
     console.line("")
     console.line("Outputs:")
     console.line(f"  recordings (WAV + JSON with ground truth)  {rec_dir}/")
     console.line(f"  scenario story (events, times)            {rec_dir / 'scenario.json'}")
     console.line(f"  replay log and summary                    {out / 'replay.log'}")
     console.line(f"  one JSON line per capture                 {out / 'replay.jsonl'}")
+    console.line(f"  analyst reports (HTML, one per change)    {out / 'reports'}/  ({len(reports)} files; "
+                 f"latest {reports[-1].name if reports else '-'})")
     shown = config.relative_to(ROOT) if config.is_relative_to(ROOT) else config
     console.line(f"Replay them again with: skidvib replay {rec_dir} -c {shown}")
     return 0

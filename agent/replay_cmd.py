@@ -280,6 +280,7 @@ def add_parser(sub) -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="one JSON line per capture, then a JSON summary")
     p.add_argument("--fs", type=float, help="sample rate, for files that do not say")
     p.add_argument("--units", choices=("g", "m/s2", "mm/s", "V"), help="units, for files that do not say")
+    p.add_argument("--reports", metavar="DIR", help="write an HTML report for each state change and a final one")
     p.set_defaults(func=run)
     return p
 
@@ -327,6 +328,11 @@ def run(args) -> int:
     else:
         print("", file=out)
         print("\n".join(summary_lines(res, events)), file=out)
+    if args.reports and res.steps:
+        from agent.report import write_replay_reports
+
+        written = write_replay_reports(res, cfg, args.reports)
+        print(f"{len(written)} reports written to {args.reports}", file=sys.stderr if args.json else out)
     return 0 if res.steps else 3
 
 

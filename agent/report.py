@@ -198,22 +198,25 @@ def load_snapshot(path: Path):
     return rec, doc
 
 
-def write_report(target: str | Path, cfg: AgentConfig, out: str | Path, **read_args) -> Path:
-    """Analyse a snapshot folder or a recording file and write the report HTML to ``out``."""
+def write_report(target: str | Path, cfg: AgentConfig, out: str | Path, *, state: dict | None = None,
+                 findings: list[dict] | None = None, **read_args) -> Path:
+    """Analyse a snapshot folder or a recording file and write the report HTML to ``out``.
+
+    For a recording, ``state``/``findings`` may say what the monitor concluded
+    (replay and demo pass them); a snapshot carries its own.
+    """
     from agent.pipeline import analyse_capture
     from agent.recordings import read_recording
 
     target = Path(target)
-    state = None
-    findings = None
     trend = None
     if target.is_dir() and (target / "analysis.json").is_file():
         rec, doc = load_snapshot(target)
         cap = dataclasses.replace(rec.to_capture(), t0_utc_s=float(doc.get("t_utc_s", 0.0)))
         a = analyse_capture(cap, cfg)
         inner = doc.get("analysis", {})
-        state = inner.get("state") if isinstance(inner.get("state"), dict) else None
-        findings = inner.get("findings")
+        state = inner.get("state") if isinstance(inner.get("state"), dict) else state
+        findings = inner.get("findings", findings)
         trend = _trend_near(target, cfg)
         name = f"snapshot {target.name}"
     else:
@@ -240,3 +243,33 @@ def _trend_near(snapshot_dir: Path, cfg: AgentConfig):
         return None
     return [{"t_utc_s": p.t_utc_s, "state": p.state, "vel_rms_mm_s": p.features.get("vel_rms_mm_s", np.nan)}
             for p in points]
+
+
+def write_replay_reports(res, cfg: AgentConfig, out_dir: str | Path, *, max_reports: int = 24) -> list[Path]:
+    """One report per state change of a replay (``agent.replay_cmd.ReplayResult``) and a final one."""
+    from agent.model import MachineState
+    from agent.monitor import STATE_ACTION
+
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    picks: list = []
+    last_state = None
+    for step in res.steps:
+        if step.state != last_state and step.path:
+            picks.append((step, "change"))
+        last_state = step.state
+    picks = picks[: max_reports - 1]
+    if res.steps and res.steps[-1].path:
+        picks.append((res.steps[-1], "final"))
+    written = []
+    for step, why in picks:
+        try:
+            action, urgency = STATE_ACTION[MachineState(step.state)]
+        except ValueError:
+            action, urgency = "", ""
+        state = {"state": step.state, "since_utc_s": step.t0_utc_s, "reason": step.reason,
+                 "action": action, "urgency": urgency}
+        name = f"{step.seq:04d}-{step.state}{'-final' if why == 'final' else ''}.html"
+        written.append(write_report(step.path, cfg, out / name, state=state,
+                                    findings=[f.to_json() for f in step.findings]))
+    return written

@@ -136,6 +136,13 @@ def test_demo_runs_on_a_small_scenario(small, tmp_path):
     assert "Replaying 8 captures" in text and "Outputs:" in text
     assert (tmp_path / "out" / "replay.log").read_text().count("Replayed 8 captures") == 1
     assert len((tmp_path / "out" / "replay.jsonl").read_text().splitlines()) == 8
+    # a report per state change and a final one, each naming the state it was written for
+    steps = [json.loads(x) for x in (tmp_path / "out" / "replay.jsonl").read_text().splitlines()]
+    changes = sum(1 for i, st in enumerate(steps) if i == 0 or st["state"] != steps[i - 1]["state"])
+    reports = sorted((tmp_path / "out" / "reports").glob("*.html"))
+    final = [r for r in reports if r.name.endswith("-final.html")]
+    assert len(reports) == changes + 1 and len(final) == 1
+    assert f"<span class='state" in final[0].read_text() and steps[-1]["state"] in final[0].read_text()
     buf2 = io.StringIO()
     run_demo(tmp_path / "out", scenario=str(path), stream=buf2, live=True, jobs=1)
     assert "Reusing the recordings" in buf2.getvalue()
