@@ -10,6 +10,8 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import Any
 
+import numpy as np
+
 from agent.config import AgentConfig, iso_band_hz
 from agent.features import OverallLevels, TimeMetrics, overall_levels, time_metrics
 from agent.model import Capture, Finding, Peak
@@ -41,6 +43,7 @@ class Analysis:
     findings: tuple[Finding, ...] = ()
     extras: dict = field(default_factory=dict)
     speed: SpeedView | None = None
+    accounted: Any = None  # agent.peaks.AccountedSpectrum: every peak labelled (diagnosis stage)
 
 
 def plan_for(cfg: AgentConfig, fs_hz: float, n_samples: int) -> SpectrumPlan:
@@ -103,7 +106,7 @@ def analyse_capture(
         extras={"speed_hz": sv.speed.speed_hz} if sv.speed.found else {},
         speed=sv,
     )
-    return with_bearing_findings(a, cfg)
+    return with_diagnosis(with_bearing_findings(a, cfg), cfg)
 
 
 def with_bearing_findings(a: Analysis, cfg: AgentConfig) -> Analysis:
@@ -133,6 +136,97 @@ def with_bearing_findings(a: Analysis, cfg: AgentConfig) -> Analysis:
             pass  # fall back to the time-domain capture
     found = bearing_findings(x, fs, sp, cfg.machine, cfg.analysis, angle_domain_speed_hz=angle_speed)
     return replace(a, findings=a.findings + found) if found else a
+
+
+# ───────────────────────── diagnosis stage: peak accounting → findings → advice ─────────────────────────
+
+
+def floor_spectrum(accel_ms2, fs_hz: float, line_hz: float = 1.5) -> Spectrum:
+    """A well-averaged acceleration spectrum of about ``line_hz`` per line for floor levels and humps.
+
+    4-term Blackman-Harris window (side lobes below −92 dB; Harris 1978), so
+    the leakage skirts of strong tones do not pose as a raised floor or a hump.
+    """
+    from scipy import signal as sps
+
+    x = np.asarray(accel_ms2, dtype=np.float64)
+    n = 1 << int(round(np.log2(fs_hz / line_hz)))
+    n = int(min(n, max(64, x.size // 4)))
+    win = sps.get_window("blackmanharris", n, fftbins=True)
+    f, p = sps.welch(x, fs=fs_hz, window=win, nperseg=n, noverlap=n // 2, scaling="spectrum", detrend="constant")
+    enbw = n * float(np.sum(win**2)) / float(win.sum()) ** 2
+    return Spectrum(f_hz=f, power=p, quantity="acceleration", unit="m/s2", window="blackmanharris",
+                    bin_width_hz=fs_hz / n, enbw_bins=enbw, n_averages=max(1, 2 * (x.size // n) - 1), nperseg=n)
+
+
+def with_diagnosis(a: Analysis, cfg: AgentConfig) -> Analysis:
+    """The last stages: account for every peak, then diagnose and advise.
+
+    Takes the running speed and the expected tones from the speed stage
+    (``a.speed``) and the bearing findings already in ``a.findings`` (the
+    bearing stage); returns the analysis with the accounted spectrum and all
+    findings, most credible first, each with severity, action and urgency.
+    """
+    from dataclasses import replace
+
+    bearing = tuple(f for f in a.findings if f.code.startswith("bearing"))
+    others = tuple(f for f in a.findings if not f.code.startswith("bearing"))
+    found = a.speed is not None and a.speed.speed.found
+    accounted, findings = diagnosis_stage(
+        a.capture, cfg, a.acc, a.overall, a.fmax_hz,
+        speed_hz=a.speed.speed.speed_hz if found else None,
+        speed_confidence=a.speed.speed.confidence if found else 0.0,
+        expected=a.speed.expected if found else (),
+        bearing_findings=bearing,
+    )
+    return replace(a, accounted=accounted, findings=findings + others)
+
+
+def diagnosis_stage(capture: Capture, cfg: AgentConfig, acc: Spectrum, overall: OverallLevels, fmax_hz: float,
+                    *, speed_hz: float | None, speed_confidence: float = 1.0, expected: tuple = (),
+                    bearing_findings: tuple[Finding, ...] = (), baseline_ratios: dict | None = None):
+    """Account for every peak, then diagnose and advise: (AccountedSpectrum, findings).
+
+    ``baseline_ratios`` (optional): current level ÷ learned normal per feature
+    name of :mod:`agent.featureset` ("order_1x_mm_s", ...) or per finding
+    code / "overall"; with them the rules and the severity judge against
+    normal rather than against the ISO zone alone.
+
+    Peaks are taken from a velocity spectrum with a lower cut than the ISO
+    band (a quarter of the lowest running speed), so sub-synchronous tones
+    (belts, oil whirl, half orders) are seen; the floor regions and humps
+    from a well-averaged spectrum of a few Hz per line.
+    """
+    from agent.advice import advise
+    from agent.diagnose import DiagnosisInput, diagnose
+    from agent.peaks import account_peaks
+
+    bin_hz = acc.bin_width_hz
+    f_low = max(3 * bin_hz, min(iso_band_hz(cfg)[0], 0.25 * cfg.machine.speed_rpm[0] / 60.0))
+    dvel = velocity_spectrum(acc, f_low)
+    pk = find_peaks(dvel, None, min_height_db=cfg.analysis.peak_min_height_db, fmin_hz=f_low, fmax_hz=fmax_hz,
+                    max_peaks=2 * cfg.analysis.max_peaks)
+    cacc = floor_spectrum(capture.accel_ms2, capture.fs_hz)
+    accounted = account_peaks(
+        pk, speed_hz, expected, unit="mm/s", bin_width_hz=bin_hz, line_hz=cfg.machine.line_hz,
+        spectrum=dvel, hump_spectrum=velocity_spectrum(cacc, max(f_low, 3 * cacc.bin_width_hz)),
+        floor_spectrum=cacc,
+    )
+    ctx = DiagnosisInput(accounted=accounted, vel_rms_mm_s=overall.vel_rms_mm_s, iso_group=cfg.machine.iso_group,
+                         support=cfg.machine.support, speed_confidence=speed_confidence,
+                         bearing_findings=tuple(bearing_findings), baseline_ratios=baseline_ratios)
+    findings = advise(diagnose(ctx), vel_rms_mm_s=overall.vel_rms_mm_s, iso_group=cfg.machine.iso_group,
+                      support=cfg.machine.support, baseline_ratios=baseline_ratios,
+                      alert_ratio=cfg.alarms.alert_ratio, danger_ratio=cfg.alarms.danger_ratio)
+    return accounted, findings
+
+
+def _finding_json(f: Finding) -> dict:
+    d = f.to_json()
+    for key in ("why", "urgency_text"):
+        if key in f.extra:
+            d[key] = f.extra[key]
+    return d
 
 
 def analysis_to_json(a: Analysis, cfg: AgentConfig, *, orders: bool = False) -> dict:
@@ -170,7 +264,8 @@ def analysis_to_json(a: Analysis, cfg: AgentConfig, *, orders: bool = False) -> 
             }
             for p in a.peaks
         ],
-        "findings": [f.to_json() for f in a.findings],
+        "accounted": None if a.accounted is None else a.accounted.to_json(k),
+        "findings": [_finding_json(f) for f in a.findings],
     }
     if a.speed is not None:
         doc["speed"] = a.speed.to_json()

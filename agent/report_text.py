@@ -42,16 +42,52 @@ def analysis_text(a, cfg: AgentConfig, rec=None, *, orders: bool = False) -> str
         lines.append(
             f"  {p.freq_hz:10.2f} {p.freq_hz * 60:10.0f} {order} {p.amp * k:9.4f} {p.height_db:8.1f}  {p.label or '-'}"
         )
+    if getattr(a, "accounted", None) is not None:
+        lines += ["", *accounted_text(a.accounted, basis, k)]
     if a.findings:
-        lines += ["", "Findings"]
+        lines += ["", "Findings (most credible first)"]
         for f in a.findings:
-            lines.append(f"  [{f.severity.name.lower()}] {f.code} ({f.confidence:.2f}) {f.title}")
+            lines.append(f"  [{f.severity.name.lower()}] {f.code} (confidence {f.confidence:.2f}) {f.title}")
             for e in f.evidence:
-                lines.append(
-                    f"      {e.get('label', ''):<24} {e.get('freq_hz', 0.0):10.2f} Hz  "
-                    f"{e.get('height_db', 0.0):5.1f} dB > floor  {e.get('spectrum', '')}"
-                )
+                if "freq_hz" in e:
+                    lines.append(f"      {e.get('label', ''):<24} {e.get('freq_hz', 0.0):10.2f} Hz  "
+                                 f"{e.get('height_db', 0.0):5.1f} dB > floor  {e.get('spectrum', '')}")
+                elif "metric" in e and e.get("value") is not None:
+                    lines.append(f"      {e['metric']}: {e['value']}")
             if f.action:
-                lines.append(f"      action: {f.action} ({f.urgency})")
+                lines.append(f"      do:      {f.action}")
+                lines.append(f"      when:    {f.extra.get('urgency_text', f.urgency)} ({f.urgency})")
+            if f.extra.get("why"):
+                lines.append(f"      why:     {f.extra['why']}")
+            for c in f.confirm:
+                lines.append(f"      confirm: {c}")
+    elif getattr(a, "accounted", None) is not None:
+        lines += ["", "Findings: none — nothing in the spectrum points to a fault."]
     lines += ["", f"Caution: {SAFETY_NOTE}"]
     return "\n".join(lines)
+
+
+def accounted_text(acc, basis: str = "rms", k: float = 1.0) -> list[str]:
+    """The accounted spectrum as a table: every peak with its label and reason."""
+    speed = f"{acc.speed_hz:.3f} Hz ({acc.speed_hz * 60:.0f} r/min)" if acc.speed_hz else "not found"
+    lines = [
+        f"Accounted peaks (velocity, {acc.unit} {basis}; running speed {speed}; "
+        f"{acc.energy_explained_fraction:.1%} of peak energy explained)",
+        f"  {'Hz':>9} {'order':>7} {acc.unit:>8} {'dB':>5}  {'label':<20} reason",
+    ]
+    for p in acc.peaks:
+        order = f"{p.order:7.2f}" if p.order is not None else f"{'':>7}"
+        hump = " [on resonance hump]" if p.on_hump else ""
+        lines.append(f"  {p.freq_hz:9.2f} {order} {p.amp * k:8.4f} {p.height_db:5.1f}  {p.label:<20} {p.reason}{hump}")
+    for fam in acc.families:
+        lines.append(f"  family: {fam.note}")
+    for h in acc.humps:
+        lines.append(f"  resonance hump near {h.center_hz:.0f} Hz ({h.excess_db:.1f} dB above the floor trend, "
+                     f"Q about {h.q:.0f}): peaks on it {h.caution}")
+    for r in acc.floor_regions:
+        d = r.delta_db
+        base = f", {d:+.1f} dB vs baseline" if d is not None else ""
+        lines.append(f"  floor {r.name:>14}: {r.level:.4g} {r.unit} r.m.s.{base}")
+    for s in acc.suggestions:
+        lines.append(f"  suggestion: {s}")
+    return lines
