@@ -119,10 +119,21 @@ def ramp(x: float, lo: float, hi: float) -> float:
     return float(min(1.0, max(0.0, (x - lo) / (hi - lo))))
 
 
+#: rule feature keys → the names of the same levels in the learned baseline (agent.featureset)
+BASELINE_FEATURE = {"1X": "order_1x_mm_s", "2X": "order_2x_mm_s", "2xLF": "band_2xlf_mm_s",
+                    "subsync": "order_0.5x_mm_s"}
+
+
 def level_factor(ctx: DiagnosisInput, amp_mm_s: float, feature: str | None = None,
                  lo: float = 0.7, hi: float = 1.5) -> tuple[float, dict]:
-    """How much an amplitude matters: vs the baseline ratio of ``feature`` when known, else vs ISO A/B."""
-    r = None if (ctx.baseline_ratios is None or feature is None) else ctx.baseline_ratios.get(feature)
+    """How much an amplitude matters: vs the baseline ratio of ``feature`` when known, else vs ISO A/B.
+
+    ``ctx.baseline_ratios`` may be keyed by the rule's key ("1X") or by the
+    baseline's feature name ("order_1x_mm_s").
+    """
+    r = None
+    if ctx.baseline_ratios is not None and feature is not None:
+        r = ctx.baseline_ratios.get(feature, ctx.baseline_ratios.get(BASELINE_FEATURE.get(feature, ""), None))
     if r is not None and math.isfinite(r):
         return ramp(r, 1.4, 2.5), {"metric": f"{feature} / baseline", "value": round(r, 2)}
     rel = amp_mm_s / ctx.ab_mm_s

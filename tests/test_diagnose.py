@@ -189,3 +189,14 @@ def test_advice_baseline_ratio():
     assert sev == Severity.DANGER
     low = advise([f])[0]
     assert low.urgency == "watch" and low.action.startswith("Keep watching")
+
+
+def test_baseline_ratio_replaces_the_iso_level():
+    # 1X at 1.0 mm/s is below the zone A/B boundary (1.4 mm/s): no credible unbalance on its own…
+    peaks = [pk(F1, 1.0), pk(2 * F1, 0.05)]
+    alone = [x for x in diagnose(ctx_of(peaks)) if x.code == "unbalance"]
+    assert not alone or alone[0].confidence < 0.4
+    # …but three times this machine's normal 1X is (ratio practice: alert ≈ 2× baseline, common practice)
+    grown = [x for x in diagnose(ctx_of(peaks, baseline_ratios={"order_1x_mm_s": 3.0})) if x.code == "unbalance"]
+    assert grown and grown[0].confidence >= HIGH_CONFIDENCE
+    assert any(e.get("metric") == "1X / baseline" for e in grown[0].evidence)
