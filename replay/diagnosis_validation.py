@@ -158,13 +158,11 @@ def main(argv: list[str] | None = None) -> int:
         "* Bearing defects are diagnosed by the envelope analysis (`agent.bearings`) and checked on the "
         "CWRU records in its own tests and in `tests/test_diagnose.py`.",
         "",
-        f"Run time: {elapsed:.0f} s.",
-        "",
     ]
     out = Path(args.out)
     out.parent.mkdir(parents=True, exist_ok=True)
     out.write_text("\n".join(lines), encoding="utf-8")
-    print(f"wrote {out}")
+    print(f"wrote {out} ({elapsed:.0f} s)")
     bad = [k for k, v in accuracy.items() if v < 0.9]
     return 1 if bad else 0
 
