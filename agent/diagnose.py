@@ -512,6 +512,8 @@ def rule_belt(ctx: DiagnosisInput) -> Finding | None:
     lvl, lev = level_factor(ctx, energy, "belt", lo=0.3, hi=0.8)
     n = len({round(p.freq_hz, 2) for p in members})
     conf = 0.9 * lvl * ramp(n, 1.5, 3.0)
+    if any(f.code == "bearing_cage" and f.extra.get("called", f.confidence >= 0.5) for f in ctx.bearing_findings):
+        conf *= 0.3  # the envelope found a cage defect: its FTF family, not a belt
     order = base / acc.speed_hz if acc.speed_hz else None
     return _finding(
         "belt", conf,

@@ -580,8 +580,12 @@ def account_peaks(
             reason=w.reason, order=(p.freq_hz / f_ref) if f_ref else None, shaft=w.shaft,
             family=w.family, harmonic=w.harmonic, klass=w.klass,
         ))
-    soft = [p for p in out if p.category in ("pole_pass", "intermod") or p.family == "half_order"]
-    families = _families([p for p in out if p.category == "unexplained"], f_ref, lf, bin_hz, shaft_speeds, soft)
+    soft = [p for p in out if p.category in ("pole_pass", "intermod", "sideband") or p.family == "half_order"]
+    # sub-synchronous bearing labels (the cage, FTF family) are doubtful in a plain spectrum: a belt family
+    # falls there too, so they take part in the family search as if unexplained
+    doubtful = [p for p in out if p.category == "bearing" and p.order is not None and p.order < 0.95]
+    families = _families([p for p in out if p.category == "unexplained"] + doubtful, f_ref, lf, bin_hz,
+                         shaft_speeds, soft)
     humps: tuple[Hump, ...] = ()
     tonal = None
     if spectrum is not None:
@@ -629,7 +633,7 @@ def _families(unexpl: Sequence[AccountedPeak], f_ref, lf, bin_hz, shaft_speeds,
               soft: Sequence[AccountedPeak] = ()) -> tuple[PeakFamily, ...]:
     """Harmonic families and equally spaced sets among the unexplained peaks.
 
-    ``soft`` peaks (labels of low certainty: pole-pass sidebands,
+    ``soft`` peaks (labels of low certainty: sidebands, pole-pass sidebands,
     intermodulation, half orders) may support a harmonic family as higher
     members, but a family needs its fundamental and one harmonic unexplained.
     """

@@ -17,7 +17,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from agent.config import AgentConfig, parse_config
-from agent.simulator import Faults, OperatingPoint, Resonance, SimMachine, synthesize
+from agent.simulator import BearingDefect, Faults, OperatingPoint, Resonance, SimBearing, SimMachine, synthesize
 
 FS_HZ = 25600.0
 N_SAMPLES = 65536  # 2.56 s
@@ -28,19 +28,23 @@ WEAK_LEVEL_MM_S = (0.8, 1.5)
 #: the fault classes of the test set (finding codes), plus "healthy"
 CLASSES = (
     "healthy", "unbalance", "misalignment", "bent_shaft", "looseness", "belt", "cavitation",
-    "electrical_2xlf", "rotor_bar", "vane_pass", "resonance",
+    "electrical_2xlf", "rotor_bar", "vane_pass", "resonance", "bearing_outer_race", "bearing_inner_race",
 )
 #: pairs that are run together (each class with another of a different kind)
 PAIRS = (
     ("unbalance", "cavitation"), ("misalignment", "electrical_2xlf"), ("looseness", "rotor_bar"),
     ("unbalance", "belt"), ("bent_shaft", "vane_pass"), ("misalignment", "cavitation"),
     ("electrical_2xlf", "vane_pass"), ("rotor_bar", "unbalance"), ("resonance", "misalignment"),
-    ("belt", "electrical_2xlf"), ("looseness", "cavitation"),
+    ("belt", "electrical_2xlf"), ("looseness", "cavitation"), ("bearing_outer_race", "unbalance"),
+    ("bearing_inner_race", "misalignment"),
 )
+#: the pump drive-end bearing of the test machine (6310-like proportions, invented)
+BEARING = {"name": "pump drive end", "balls": 8, "ball_diameter_mm": 20.6, "pitch_diameter_mm": 80.0}
 
 CASE_CONFIG: AgentConfig = parse_config({
     "source": {"fs_hz": FS_HZ, "capture_s": N_SAMPLES / FS_HZ},
-    "machine": {"speed_rpm": [600.0, 1800.0], "line_hz": 50.0, "poles": 4, "rotor_bars": 28, "vanes": 6},
+    "machine": {"speed_rpm": [600.0, 1800.0], "line_hz": 50.0, "poles": 4, "rotor_bars": 28, "vanes": 6,
+                "bearings": [BEARING]},
 }, "<diagnosis test set>")
 
 
@@ -80,6 +84,12 @@ def _apply(kind: str, rng: np.random.Generator, m: dict, f: dict, levels: tuple[
         m["vane_pass_mm_s"] = (level, 0.3 * level)
     elif kind == "resonance":
         m["structure"] = Resonance(rng.uniform(130.0, 600.0), rng.uniform(0.03, 0.06), rng.uniform(3.0, 6.0))
+    elif kind in ("bearing_outer_race", "bearing_inner_race"):
+        defect = "outer" if kind == "bearing_outer_race" else "inner"
+        stage = int(rng.integers(2, 4))
+        f["bearings"] = (*f.get("bearings", ()), BearingDefect(
+            BEARING["name"], defect, impulse_g=rng.uniform(0.3, 1.5), stage=stage,
+            tone_mm_s=rng.uniform(0.1, 0.4), slip_frac=rng.uniform(0.0, 0.015)))
     elif kind != "healthy":
         raise ValueError(f"unknown class {kind!r}")
 
@@ -90,6 +100,7 @@ def make_case(classes: tuple[str, ...] | str, seed: int, levels: tuple[float, fl
         classes = (classes,)
     rng = np.random.default_rng([seed, *(sum(map(ord, c)) for c in classes)])
     m: dict = {"vanes": 6, "rotor_bars": 28, "residual_1x_mm_s": rng.uniform(0.4, 1.0),
+               "bearings": (SimBearing(**BEARING),),
                "noise_g": rng.uniform(0.001, 0.004), "floor_mm_s": rng.uniform(0.03, 0.08)}
     f: dict = {}
     for c in classes:

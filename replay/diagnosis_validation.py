@@ -138,7 +138,7 @@ def main(argv: list[str] | None = None) -> int:
         f"The same classes at {WEAK_LEVEL_MM_S[0]}-{WEAK_LEVEL_MM_S[1]} mm/s r.m.s. (around the zone A/B "
         "boundary, 1.4 mm/s), where a healthy machine also lives. Without a learned baseline the rules judge "
         "levels against the ISO boundary, so here the agent is expected to be silent or unsure more often; "
-        "once a baseline is learned the ratio to normal takes over. Cavitation (g), rotor bar (g) and "
+        "once a baseline is learned the ratio to normal takes over. Cavitation (g), rotor bar (g), bearing defects (g) and "
         "resonance (gain) are not set in mm/s: their rows repeat the main test with other seeds.",
         "",
         "| fault | right top finding | no finding | other top findings |",
@@ -155,8 +155,9 @@ def main(argv: list[str] | None = None) -> int:
         "These figures show the rules and the accounting work as designed, not field accuracy.",
         "* Gear mesh, pole-pass sidebands and sub-synchronous instability are not in the simulator; "
         "their rules are checked by unit tests on hand-built spectra (`tests/test_diagnose.py`).",
-        "* Bearing defects are diagnosed by the envelope analysis (`agent.bearings`) and checked on the "
-        "CWRU records in its own tests and in `tests/test_diagnose.py`.",
+        "* Bearing defects (outer and inner race, stages 2-3, 0.3-1.5 g impacts) are diagnosed by the envelope "
+        "analysis (`agent.bearings`); the real CWRU records are checked in `tests/test_diagnosis_cwru.py` "
+        "(every Y-rated call the bearing stage makes stays the top finding) and in the bearing stage's own tests.",
         "",
     ]
     out = Path(args.out)
