@@ -807,15 +807,14 @@ def find_humps(
     Best on a well-averaged spectrum of moderate resolution (a few Hz per
     line). ``floor`` defaults to a running median over ``median_lines``
     lines after masking the tones (lines 10 dB above a 21-line median, then
-    6 dB above a 9-line median, and
-    their neighbours), narrow enough to
-keep a hump of a few percent width). The trend is a running median of the
-log floor over ``trend_octaves``
-    on a log-frequency axis, so a hump narrower than about half that
-    (a resonance with Q above ~3) stands out; a hump counts when it rises
-    ``min_excess_db`` above the trend. ``q`` is centre ÷ the width at half
-    the hump's height in dB (close to the half-power width for a hump of
-    about 6 dB).
+    6 dB above a 9-line median, with their neighbours), narrow enough to
+    keep a hump of a few percent width. The trend is a running median of
+    the log floor over ``trend_octaves`` on a log-frequency axis, so a hump
+    narrower than about half that (a resonance with Q above ~3) stands out;
+    a hump counts when it rises ``min_excess_db`` above the trend and both
+    of its flanks rise gradually (a step in the floor is not a hump). ``q``
+    is centre ÷ the width at half the hump's height in dB (close to the
+    half-power width for a hump of about 6 dB).
     """
     f = spec.f_hz
     if floor is None:  # a narrow median keeps humps a few percent wide
