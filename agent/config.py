@@ -385,6 +385,8 @@ def _cross_checks(cfg: AgentConfig, errors: list[str]) -> None:
     lo, hi = mach.speed_rpm
     if lo <= 0 or hi <= lo:
         errors.append(f"machine.speed_rpm: [{lo}, {hi}] must be increasing and above 0")
+    if abs(src.fs_hz - round(src.fs_hz)) > 1e-6 * src.fs_hz:
+        errors.append(f"source.fs_hz: {src.fs_hz} must be a whole number of Hz (snapshots are WAV files)")
     nyquist = src.fs_hz / 2
     if ana.fmax_hz and ana.fmax_hz > nyquist:
         errors.append(f"analysis.fmax_hz: {ana.fmax_hz} is above the Nyquist frequency {nyquist} (source.fs_hz/2)")

@@ -207,6 +207,8 @@ class Daemon:
         self.stop_event = threading.Event()
         self.reload_event = threading.Event()
         self.snapshot_event = threading.Event()
+        self.pending: queue.SimpleQueue = queue.SimpleQueue()  # ("ack", id) / ("relearn", None) from requests
+        self.last_lock = threading.Lock()  # last_result / last_captures, read by the request thread
         self.queue: queue.Queue = queue.Queue(maxsize=QUEUE_CAPTURES)
         self.ms: MonitorState = initial_state(cfg, wall())
         self.last_result: CaptureResult | None = None
@@ -244,6 +246,8 @@ class Daemon:
         self.link = MqttLink(settings, outbox, clock=self.wall)
         self.controls = BasicControls(snapshot_fn=self._snapshot_now, relearn_fn=self._relearn, clock=self.wall,
                                       ack_fn=self._alarm_acknowledged)
+        self.controls.mode = self.ms.mode  # a restored mode (e.g. maintenance) carries over
+        self._register_open_alarm(self.ms.state.value, self.ms.since_utc_s, "")  # a restored open alarm can be acked
         self.remote = RemoteService(self.link, RequestHandler(settings.topics, self.store, self.controls, clock=self.wall))
         self.link.start()
         log_event("mqtt_start", host=settings.host, port=settings.port, base=settings.topics.base)
@@ -263,6 +267,9 @@ class Daemon:
                 mode=str(doc.get("mode", "monitor")),
                 finding_codes=tuple(doc.get("finding_codes", ())),
             )
+            alarm_id = doc.get("open_alarm_id")
+            if isinstance(alarm_id, str) and self.ms.state in BAD_STATES:
+                self.open_alarm_id = alarm_id
             log_event("state_restored", state=self.ms.state.value)
         except FileNotFoundError:
             pass
@@ -297,7 +304,8 @@ class Daemon:
         from agent.store import json_bytes, write_atomic
 
         try:
-            write_atomic(self._state_file(self.store.state_dir), json_bytes(self.ms.to_json()))
+            doc = {**self.ms.to_json(), "open_alarm_id": self.open_alarm_id}
+            write_atomic(self._state_file(self.store.state_dir), json_bytes(doc))
             if self.ms.baselines is not None:
                 from agent.baseline import BaselineStore
 
@@ -315,34 +323,72 @@ class Daemon:
     # ── remote controls ──
     def _snapshot_now(self) -> str:
         """Called for a remote 'snapshot' request (on the request thread): take it from the last capture."""
-        if self.last_result is None or not self.last_captures:
+        with self.last_lock:
+            result, caps = self.last_result, self.last_captures
+        if result is None or not caps:
             from agent.errors import RequestError
 
             raise RequestError("no_capture", "no capture has been taken yet")
-        return self._save_snapshot(self.last_result, self.last_captures, "on_request")
+        return self._save_snapshot(result, caps, "on_request")
+
+    def _register_open_alarm(self, state: str, t_utc_s: float, snapshot_id: str) -> None:
+        if self.controls is not None and self.open_alarm_id is not None:
+            self.controls.open_alarms[self.open_alarm_id] = {"state": state, "t_utc_s": t_utc_s,
+                                                             "snapshot_id": snapshot_id}
 
     def _alarm_acknowledged(self, alarm_id: str) -> None:
-        """An operator acknowledged the alarm (request thread): its snapshot may now age out."""
+        """An operator acknowledged the alarm (request thread): handled by the main loop."""
+        self.pending.put(("ack", alarm_id))
+
+    def _relearn(self) -> None:
+        """A relearn was requested (request thread): handled by the main loop."""
+        log_event("relearn_requested")
+        self.pending.put(("relearn", None))
+
+    def _apply_pending(self) -> None:
+        """Requests from the remote thread, applied between captures so no state update is lost."""
+        while True:
+            try:
+                what, arg = self.pending.get_nowait()
+            except queue.Empty:
+                return
+            if what == "ack":
+                self._apply_ack(arg)
+            elif what == "relearn":
+                self._apply_relearn()
+
+    def _apply_ack(self, alarm_id: str) -> None:
+        """The snapshot may age out now; latched feature alarms fall back to their live level."""
         try:
             self.store.unpin_alarm(alarm_id)
         except StoreError as exc:
             self._count_store_error(exc)
         if self.open_alarm_id == alarm_id:
             self.open_alarm_id = None
+        if self.ms.engine is not None:
+            from agent.assess import acknowledge, settings
+
+            engine, _ = acknowledge(self.ms.engine, self.wall(), settings(self.cfg)[2])
+            self.ms = dataclasses.replace(self.ms, engine=engine)
         log_event("alarm_acknowledged", alarm_id=alarm_id)
 
-    def _relearn(self) -> None:
-        log_event("relearn_requested")
+    def _apply_relearn(self) -> None:
+        """Archive the learned baseline and start learning afresh (after maintenance)."""
         if self.store is not None:
             from agent.baseline import BaselineStore
 
+            bs = BaselineStore(self.store.state_dir)
             try:
-                archived = BaselineStore(self.store.state_dir).archive(self.wall())
+                archived = bs.archive(self.wall())
                 if archived is not None:
                     log_event("baseline_archived", file=str(archived))
+                bs.path.unlink(missing_ok=True)  # a restart must not bring the old baseline back
+                (self.store.state_dir / "alarms.json").unlink(missing_ok=True)
             except (StoreError, OSError) as exc:
                 self._count_store_error(exc)
         self.ms = dataclasses.replace(self.ms, baselines=None, engine=None)
+        self._save_state()
+        log_event("relearn_started")
 
     # ── the work ──
     def _save_snapshot(self, result: CaptureResult, caps: tuple[Capture, ...], reason: str) -> str:
@@ -445,12 +491,11 @@ class Daemon:
                     if reason == "scheduled":
                         self.next_scheduled_snapshot_mono = self.mono() + self.cfg.store.snapshot_every_h * 3600.0
                     if result.state in BAD_STATES and result.state_changed:
-                        self.open_alarm_id = f"{result.state.value}-{int(result.t_utc_s)}"
+                        # one alarm id per episode (alert → danger → alert is one episode)
+                        if self.open_alarm_id is None:
+                            self.open_alarm_id = f"{result.state.value}-{int(result.t_utc_s)}"
                         self.store.pin(snapshot_id, self.open_alarm_id)
-                        if self.controls is not None:
-                            self.controls.open_alarms[self.open_alarm_id] = {"state": result.state.value,
-                                                                             "t_utc_s": result.t_utc_s,
-                                                                             "snapshot_id": snapshot_id}
+                        self._register_open_alarm(result.state.value, result.t_utc_s, snapshot_id)
                 except StoreError as exc:
                     self._count_store_error(exc)
             if result.state not in BAD_STATES and self.open_alarm_id and result.state_changed:
@@ -487,7 +532,8 @@ class Daemon:
                 self.ms = dataclasses.replace(self.ms, mode=mode)
                 log_event("mode", mode=mode)
         result, self.ms = monitor_step(self.ms, caps, self.cfg)
-        self.last_result, self.last_captures = result, caps
+        with self.last_lock:
+            self.last_result, self.last_captures = result, caps
         self.health.captures_done += 1
         self.health.last_capture_utc_s = result.t_utc_s
         log_event("capture", seq=result.seq, state=result.state.value,
@@ -541,6 +587,7 @@ class Daemon:
             self.remote.start()
         try:
             while not self.stop_event.is_set():
+                self._apply_pending()
                 if self.reload_event.is_set():
                     notifier.reloading()
                     self._reload()

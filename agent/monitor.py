@@ -26,11 +26,12 @@ from typing import Any
 from agent.assess import EngineState, judge_analysis
 from agent.baseline import Baselines
 from agent.config import AgentConfig
-from agent.model import Capture, Finding, MachineState
+from agent.model import Capture, Finding, MachineState, Severity
 from agent.pipeline import Analysis, analyse_capture, analysis_to_json
 from agent.speed import SpeedEstimate
 
 SCHEMA = 1
+EVENT_MIN_CONFIDENCE = 0.5  # a finding raises a "new_finding" event from this confidence (or at alert severity)
 
 #: what the operator is told to do in each state (our own wording)
 STATE_ACTION = {
@@ -127,6 +128,12 @@ class CaptureResult:
         return doc
 
 
+def reportable_findings(findings) -> list[Finding]:
+    """Findings worth announcing: at least watch severity with confidence >= EVENT_MIN_CONFIDENCE, or alert and above."""
+    return [f for f in findings
+            if f.severity >= Severity.ALERT or (f.severity >= Severity.WATCH and f.confidence >= EVENT_MIN_CONFIDENCE)]
+
+
 def initial_state(cfg: AgentConfig, t_utc_s: float = 0.0) -> MonitorState:
     return MonitorState(since_utc_s=t_utc_s)
 
@@ -176,8 +183,11 @@ def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConf
             events.append({"event": "alarm", "t_utc_s": ev.t_utc_s, "feature": ev.feature, "state": ev.new,
                            "previous_state": ev.old, "severity": ev.new, "value": ev.value, "level": ev.level,
                            "reason": ev.reason})
-    codes = tuple(sorted(f.code for f in findings))
-    for f in findings:
+    # only findings worth an operator's attention raise events; weak ones that come and go
+    # between captures stay in the analysis (and the report) without announcing themselves
+    reportable = reportable_findings(findings)
+    codes = tuple(sorted(f.code for f in reportable))
+    for f in reportable:
         if f.code not in ms.finding_codes:
             events.append({"event": "new_finding", "t_utc_s": t, "code": f.code, "title": f.title,
                            "severity": f.severity.name.lower(), "confidence": round(f.confidence, 3)})

@@ -128,9 +128,12 @@ def classify(
         raise ValueError(f"vel_rms_mm_s must be finite and >= 0, got {vel_rms_mm_s!r}")
     if speed_hz is not None and not (math.isfinite(speed_hz) and speed_hz >= 0):
         raise ValueError(f"speed_hz must be finite and >= 0 or None, got {speed_hz!r}")
-    if vel_rms_mm_s < cfg.stopped_vel_mm_s:
+    if speed_hz is None and vel_rms_mm_s < cfg.stopped_vel_mm_s:
+        # quiet and no rotation found; a quiet machine whose speed is found is running
+        # (bearing tones live above the velocity band)
         return OperatingState(STOPPED, False, speed_hz, None, None, "", "stopped",
-                              f"overall {vel_rms_mm_s:.3g} mm/s below {cfg.stopped_vel_mm_s:g} mm/s")
+                              f"no running speed found and overall {vel_rms_mm_s:.3g} mm/s below "
+                              f"{cfg.stopped_vel_mm_s:g} mm/s")
     if speed_hz is not None and speed_hz * 60.0 < cfg.min_running_rpm:
         return OperatingState(STOPPED, False, speed_hz, None, None, "", "stopped",
                               f"speed {speed_hz * 60:.0f} rpm below {cfg.min_running_rpm:g} rpm")

@@ -122,7 +122,7 @@ def run_replay(source, cfg, *, on_step: Callable[[StepView, list[dict]], None] |
     new_changes)`` is called after each capture. ``clock`` only measures how
     long the replay took.
     """
-    from agent.monitor import initial_state, monitor_step
+    from agent.monitor import initial_state, monitor_step, reportable_findings
     from agent.sources import EndOfSource
 
     res = ReplayResult()
@@ -153,7 +153,7 @@ def run_replay(source, cfg, *, on_step: Callable[[StepView, list[dict]], None] |
             elif ev.get("event") == "new_finding":
                 new.append({"t0_utc_s": ev["t_utc_s"], "seq": view.seq, "kind": "finding", "code": ev["code"],
                             "severity": ev["severity"], "title": ev["title"]})
-        codes = {f.code for f in result.findings}
+        codes = {f.code for f in reportable_findings(result.findings)}
         for code in sorted(prev_codes - codes):
             new.append({"t0_utc_s": view.t0_utc_s, "seq": view.seq, "kind": "cleared", "code": code})
         prev_codes = codes

@@ -394,18 +394,23 @@ class Store:
             return name
 
     # -- pins and retention ---------------------------------------------------
+    def _sql(self, what: str, sql: str, args: tuple = ()) -> list:
+        """Run one statement; a database error (disk full, locked) becomes a StoreError."""
+        try:
+            with self._lock:
+                return self._db.execute(sql, args).fetchall()
+        except sqlite3.Error as exc:
+            raise self._fail(StoreError(f"trend database: cannot {what}: {exc}")) from exc
+
     def pin(self, snapshot_id: str, alarm_id: str) -> None:
         """Keep ``snapshot_id`` while ``alarm_id`` is open."""
-        with self._lock:
-            self._db.execute("INSERT OR IGNORE INTO pins VALUES (?, ?)", (snapshot_id, alarm_id))
+        self._sql("pin a snapshot", "INSERT OR IGNORE INTO pins VALUES (?, ?)", (snapshot_id, alarm_id))
 
     def unpin_alarm(self, alarm_id: str) -> None:
-        with self._lock:
-            self._db.execute("DELETE FROM pins WHERE alarm_id = ?", (alarm_id,))
+        self._sql("unpin a snapshot", "DELETE FROM pins WHERE alarm_id = ?", (alarm_id,))
 
     def pinned_ids(self) -> set[str]:
-        with self._lock:
-            return {r[0] for r in self._db.execute("SELECT snapshot_id FROM pins")}
+        return {r[0] for r in self._sql("read pins", "SELECT snapshot_id FROM pins")}
 
     def prune(self) -> list[str]:
         """Delete the oldest unpinned snapshots beyond ``max_count`` / ``max_bytes``."""

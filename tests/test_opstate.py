@@ -25,8 +25,10 @@ def test_bins_from_edges():
 
 
 def test_stopped_by_level_or_speed():
-    op = classify(0.05, 24.6, CFG)
+    op = classify(0.05, None, CFG)
     assert op.mode == STOPPED and not op.usable and op.key == "" and "below 0.2 mm/s" in op.reason
+    # quiet but turning (e.g. a bearing fault that lives above the velocity band): running, not stopped
+    assert classify(0.05, 24.6, CFG).mode != STOPPED
     op = classify(1.0, 0.5, CFG)  # 30 rpm: below min_running_rpm 60
     assert op.mode == STOPPED and "below 60 rpm" in op.reason
 
