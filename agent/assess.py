@@ -61,7 +61,7 @@ from dataclasses import dataclass, field, replace
 
 from agent.baseline import Baselines, BaselineConfig, FeatureStats, from_log, learn, to_log
 from agent.errors import IncompatibleStateFile
-from agent.featureset import AMPLITUDE, FeatureVector, feature_kind
+from agent.featureset import AMPLITUDE, FeatureVector, feature_kind, feature_label
 from agent.features import ISO20816_3_VELOCITY_MM_S, iso_zone
 from agent.model import MachineState
 from agent.opstate import STOPPED, OperatingState, OpStateConfig
@@ -383,9 +383,9 @@ def _worst(features: Mapping[str, FeatureAlarm], cfg: AlarmConfig) -> tuple[int,
 def _overall(features: Mapping[str, FeatureAlarm], ready: bool, cfg: AlarmConfig) -> tuple[MachineState, str, str]:
     worst, who = _worst(features, cfg)
     if worst == DANGER:
-        return MachineState.DANGER, who, f"{who} at danger"
+        return MachineState.DANGER, who, f"{feature_label(who)} at danger level ({who})"
     if worst == ALERT:
-        return MachineState.ALERT, who, f"{who} at alert"
+        return MachineState.ALERT, who, f"{feature_label(who)} at alert level ({who})"
     if ready:
         return MachineState.NORMAL, "", "all features within their levels"
     return MachineState.LEARNING, "", "learning what is normal for this operating state"
@@ -499,7 +499,7 @@ def acknowledge(engine: EngineState, t_utc_s: float, cfg: AlarmConfig, feature: 
             machine, reason = MachineState.NORMAL, "acknowledged; all features within their levels"
         else:
             machine = MachineState.DANGER if worst == DANGER else MachineState.ALERT
-            reason = f"{who} at {LEVEL_NAMES[worst]}"
+            reason = f"{feature_label(who)} at {LEVEL_NAMES[worst]} level ({who})"
         if machine != engine.machine:
             events.append(AlarmEvent(t_utc_s, "machine", engine.machine.value, machine.value, who, None, None,
                                      "acknowledged"))

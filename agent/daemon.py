@@ -53,7 +53,7 @@ def log_event(event: str, level: str = "info", stream=None, **fields: Any) -> No
     parts = [f"level={level}", f"event={event}"]
     for k, v in fields.items():
         if isinstance(v, float):
-            v = f"{v:.4g}"
+            v = f"{v:.3f}" if abs(v) >= 1e4 else f"{v:.4g}"  # timestamps and rates keep their digits
         text = str(v)
         if not text or any(c in text for c in ' ="\n'):
             text = json.dumps(text)
@@ -142,6 +142,14 @@ class Acquisition(threading.Thread):
         return self.stop_event.is_set()
 
     def _put(self, item) -> None:
+        if item[0] != "captures":  # the end of a replay and source problems are never dropped
+            while not self.stop_event.is_set():
+                try:
+                    self.out.put(item, timeout=0.5)
+                    return
+                except queue.Full:
+                    continue
+            return
         try:
             self.out.put_nowait(item)
         except queue.Full:
@@ -220,6 +228,7 @@ class Daemon:
         self.open_alarm_id: str | None = None
         self.next_scheduled_snapshot_mono = mono() + cfg.store.snapshot_every_h * 3600.0
         self.next_health_mono = 0.0
+        self.last_state_published: tuple | None = None
         self.next_housekeeping_mono = mono() + 3600.0
 
     # ── edges ──
@@ -412,7 +421,9 @@ class Daemon:
         t = result.t_utc_s
         mode = self.ms.mode
         try:
-            if result.state_changed or self.health.captures_done <= 1:
+            shown = (result.state, result.reason, mode)
+            if shown != self.last_state_published:
+                self.last_state_published = shown
                 self.link.send("state", m.state_payload(result.state, result.since_utc_s, result.reason, result.action,
                                                         result.urgency, t_utc_s=t, mode=mode),
                                kind=Kind.KEPT, retain=True, replace_key="state")
@@ -449,7 +460,9 @@ class Daemon:
             extra["outbox_depth_count"] = st.depth
             extra["outbox_bytes_count"] = st.bytes
             du = self.store.disk_usage()
-            extra.update({k: v for k, v in du.items() if isinstance(v, (int, float))})
+            # the daemon counts store errors and snapshots itself; keep the store's figures apart
+            extra.update({("stored_" + k if k.startswith("snapshots_") else k): v for k, v in du.items()
+                          if isinstance(v, (int, float)) and k != "store_errors_count"})
         except (AgentError, OSError, AttributeError) as exc:
             extra["health_note"] = str(exc)
         self.health.extra = extra
@@ -627,7 +640,8 @@ class Daemon:
         if self.store is not None:
             self._save_state()
         if self.link is not None:
-            self._publish_health(float("inf"))
+            self.next_health_mono = 0.0  # a last health message on the way out
+            self._publish_health(self.mono())
             self.link.stop(timeout_s=5.0)
         if self.store is not None:
             self.store.close()

@@ -244,3 +244,30 @@ def features_from_analysis(analysis, line_hz: float | None = 50.0) -> FeatureVec
         orders = {k: v for k, v in lv.as_dict().items() if math.isfinite(v)}
     return build_features(analysis.vel, analysis.acc, tm, orders, extras.get("envelope_levels_g"),
                           iso_band_hz=o.iso_band_hz, line_hz=line_hz)
+
+
+_PLAIN = {
+    "vel_rms_mm_s": "overall velocity",
+    "acc_rms_g": "overall acceleration",
+    "acc_peak_g": "peak acceleration",
+    "crest_factor": "crest factor (impacting)",
+    "kurtosis": "kurtosis (impacting)",
+    "band_2xlf_mm_s": "twice-line-frequency vibration",
+    "env_band_g": "bearing envelope band",
+    "floor_hf_db": "high-frequency noise floor",
+    "floor_lf_db": "low-frequency noise floor",
+}
+
+
+def feature_label(name: str) -> str:
+    """Plain words for a feature name, for operators: ``order_1x_mm_s`` → ``1X vibration``."""
+    if name in _PLAIN:
+        return _PLAIN[name]
+    if name.startswith("order_") and name.endswith("x_mm_s"):
+        return f"{name[len('order_'):-len('x_mm_s')].upper()}X vibration"
+    for tone in ("bpfo", "bpfi", "bsf", "ftf"):
+        if name.startswith(tone + "_") and name.endswith("_g"):
+            return f"{tone.upper()} tone of bearing {name[len(tone) + 1:-2].replace('_', ' ')}"
+    if name.startswith("band_") and name.endswith("_mm_s"):
+        return f"band {name[5:-5].replace('_', ' ')}"
+    return name.replace("_", " ")

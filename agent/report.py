@@ -225,7 +225,13 @@ def write_report(target: str | Path, cfg: AgentConfig, out: str | Path, *, state
         name = str(target)
     html_text = build_report(a, cfg, state=state, findings=findings, trend=trend, source_name=name)
     out = Path(out)
-    out.write_text(html_text, encoding="utf-8")
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        out.write_text(html_text, encoding="utf-8")
+    except OSError as exc:
+        from agent.errors import AgentError
+
+        raise AgentError(f"cannot write the report to {out}: {exc.strerror or exc}") from exc
     return out
 
 
