@@ -375,6 +375,10 @@ def _worst(features: Mapping[str, FeatureAlarm], cfg: AlarmConfig) -> tuple[int,
     worst, who = NORMAL, ""
     for name, fa in features.items():
         s = fa.shown(cfg)
+        if s > ALERT and feature_kind(name) != AMPLITUDE:
+            # a noise-floor rise, crest factor or kurtosis alone is an early sign, not a reason to stop
+            # the machine: the machine state goes to danger only on an amplitude (our own rule)
+            s = ALERT
         if s > worst:
             worst, who = s, name
     return worst, who
