@@ -573,6 +573,11 @@ def speed_profile(
         e = float(np.max(10 * np.log10(whole.power[sel] / floor[sel])))
         if e > best_e:
             best_h, best_e = h, e
+    if best_h is None:
+        raise ValueError(
+            f"no harmonic of {speed_hz_guess:.2f} Hz can be tracked in frames of {nfr / fs_hz:.3f} s "
+            f"({bin_hz:.2f} Hz lines): each lies too near the line-frequency family or the top of the band"
+        )
     h = best_h
     lo_b, hi_b = h * speed_hz_guess * (1 - max_change), h * speed_hz_guess * (1 + max_change)
     klo = max(1, int(np.floor(lo_b / bin_hz)))

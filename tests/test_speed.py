@@ -252,6 +252,15 @@ def test_resample_to_angle_rejects_too_many_samples_per_rev():
         resample_to_angle(x, 1024.0, prof, samples_per_rev=64)
 
 
+def test_speed_profile_no_trackable_harmonic_is_a_value_error():
+    # 0.64 s at 51.2 kHz: frames of 0.08 s have 12.5 Hz lines, so every
+    # harmonic band of 24.6 Hz up to 6X lies within two lines of the 50 Hz
+    # family (or above the band) — a clear ValueError, not a TypeError
+    x = _chirp(24.6, 24.6, 51200.0, 0.64)
+    with pytest.raises(ValueError, match="no harmonic"):
+        speed_profile(x, 51200.0, 24.6, line_hz=50.0)
+
+
 # --------------------------------------------------------------- order view and labels
 
 
