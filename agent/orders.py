@@ -324,7 +324,7 @@ def speed_view(
     orders = tuple(sorted(set(DEFAULT_ORDERS) | {round(o, 6) for o in train.forcing_orders()}))
     profile = None
     try:
-        profile = speed_profile(x, fs_hz, f0, line_hz=machine.line_hz)
+        profile = speed_profile(x, fs_hz, f0, line_hz=machine.line_hz, whole=spec)
     except ValueError:
         profile = None  # capture too short to follow a harmonic: levels from the plain spectrum
     if profile is not None and abs(profile.mean_hz - f0) > 0.005 * f0 + speed.bin_width_hz:

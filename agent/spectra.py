@@ -23,24 +23,33 @@ import functools
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import ndimage, signal
+from numpy.lib.stride_tricks import sliding_window_view
+from scipy import fft, ndimage, signal
 
 from agent.model import Peak
 
 WINDOWS = ("hann", "flattop", "rectangular")
+#: samples per FFT batch in :func:`_segment_abs2` (256 kB of float64)
+_BLOCK_SAMPLES = 1 << 15
 #: half-width of the main lobe in lines, for summing a tone's power
 _LOBE_HALF_LINES = {"hann": 2, "flattop": 5, "rectangular": 1}
 
 
 def make_window(name: str, n: int) -> np.ndarray:
     """Periodic (DFT-even) window of length ``n``; see Harris 1978, §II."""
+    return _window(name, int(n)).copy()
+
+
+@functools.lru_cache(maxsize=8)
+def _window(name: str, n: int) -> np.ndarray:
+    """The shared, read-only window behind :func:`make_window` and the plans."""
     if name not in WINDOWS:
         raise ValueError(f"window must be one of {WINDOWS}, got {name!r}")
     if n < 4:
         raise ValueError(f"window length must be >= 4, got {n}")
-    if name == "rectangular":
-        return np.ones(n)
-    return signal.get_window(name, n, fftbins=True)
+    w = np.ones(n) if name == "rectangular" else signal.get_window(name, n, fftbins=True)
+    w.setflags(write=False)
+    return w
 
 
 @dataclass(frozen=True, slots=True)
@@ -61,21 +70,13 @@ class WindowFigures:
 @functools.lru_cache(maxsize=64)
 def window_figures(name: str, n: int = 1024) -> WindowFigures:
     """Coherent gain, ENBW (lines) and scalloping loss (dB) of a window (memoised: plans are rebuilt often)."""
-    w = make_window(name, n)
+    w = _window(name, int(n))
     cg = w.sum() / n
     enbw = n * np.sum(w**2) / w.sum() ** 2
     k = np.arange(n)
     half_bin = abs(np.sum(w * np.exp(-1j * np.pi * k / n)))
     sl_db = -20.0 * np.log10(half_bin / w.sum())
     return WindowFigures(name, n, float(cg), float(enbw), float(sl_db))
-
-
-@functools.lru_cache(maxsize=64)
-def _readonly_window(name: str, n: int) -> np.ndarray:
-    """A shared read-only copy of a window (plans hold it read-only anyway)."""
-    w = make_window(name, n)
-    w.setflags(write=False)
-    return w
 
 
 @dataclass(frozen=True, slots=True)
@@ -125,11 +126,22 @@ class SpectrumPlan:
             nperseg = int(2 * lines)
             if nperseg > n_samples:
                 nperseg = 1 << int(np.floor(np.log2(n_samples)))
-        win = _readonly_window(window, nperseg)
-        f_hz = np.fft.rfftfreq(nperseg, 1.0 / fs_hz)
-        f_hz.setflags(write=False)
         noverlap = int(round(overlap * nperseg))
-        return cls(float(fs_hz), nperseg, noverlap, window, win, f_hz, window_figures(window, nperseg))
+        return _plan(cls, float(fs_hz), nperseg, noverlap, window)
+
+
+@functools.lru_cache(maxsize=8)
+def _plan(cls, fs_hz: float, nperseg: int, noverlap: int, window: str) -> SpectrumPlan:
+    """Plans are immutable (read-only arrays), so one per set-up is built and shared.
+
+    About five are used for every capture (quality gate, analysis, speed,
+    speed-profile frames, order tracking); the cache is kept that small so
+    it costs little memory.
+    """
+    win = _window(window, nperseg)
+    f_hz = np.fft.rfftfreq(nperseg, 1.0 / fs_hz)
+    f_hz.setflags(write=False)
+    return cls(fs_hz, nperseg, noverlap, window, win, f_hz, window_figures(window, nperseg))
 
 
 @dataclass(frozen=True, slots=True)
@@ -171,8 +183,8 @@ class Spectrum:
         return float(self.f_hz[-1])
 
 
-def accel_spectrum(accel_ms2: np.ndarray, plan: SpectrumPlan) -> Spectrum:
-    """Welch-averaged acceleration power spectrum, m/s² r.m.s.² per line."""
+def _segment_abs2(accel_ms2: np.ndarray, plan: SpectrumPlan) -> np.ndarray:
+    """|FFT|² of every windowed, mean-removed segment (rows), unscaled."""
     x = np.asarray(accel_ms2, dtype=np.float64)
     if x.ndim != 1:
         raise ValueError(f"accel_ms2 must be 1-D, got shape {x.shape}")
@@ -180,15 +192,32 @@ def accel_spectrum(accel_ms2: np.ndarray, plan: SpectrumPlan) -> Spectrum:
         raise ValueError(f"{x.size} samples is shorter than one segment ({plan.nperseg})")
     step = plan.nperseg - plan.noverlap
     n_seg = 1 + (x.size - plan.nperseg) // step
-    idx = np.arange(plan.nperseg)[None, :] + step * np.arange(n_seg)[:, None]
-    seg = x[idx]
-    seg = seg - seg.mean(axis=1, keepdims=True)
-    spec = np.fft.rfft(seg * plan.win, axis=1)
-    power = (spec.real**2 + spec.imag**2).mean(axis=0)
+    seg = sliding_window_view(x, plan.nperseg)[::step][:n_seg]  # a view: no copy yet
+    out = np.empty((n_seg, plan.nperseg // 2 + 1))
+    # a few segments at a time, so each block's copies stay in the processor's cache
+    # (many short overlapping segments are several times the capture's size)
+    rows = max(1, _BLOCK_SAMPLES // plan.nperseg)
+    for a in range(0, n_seg, rows):
+        block = seg[a : a + rows]
+        block = block - block.mean(axis=1, keepdims=True)
+        block *= plan.win
+        # scipy.fft: the same pocketfft as numpy.fft, faster on the rows of a 2-D array
+        spec = fft.rfft(block, axis=1)
+        np.multiply(spec.real, spec.real, out=out[a : a + rows])
+        out[a : a + rows] += spec.imag**2
+    return out
+
+
+def _scale_power(power: np.ndarray, plan: SpectrumPlan) -> np.ndarray:
+    """|FFT|² (last axis) → tone r.m.s.² per line, in place: one-sided, window gain removed."""
     power *= 2.0 / plan.win.sum() ** 2
-    power[0] /= 2.0
+    power[..., 0] /= 2.0
     if plan.nperseg % 2 == 0:
-        power[-1] /= 2.0
+        power[..., -1] /= 2.0
+    return power
+
+
+def _spectrum(power: np.ndarray, plan: SpectrumPlan, n_averages: int) -> Spectrum:
     return Spectrum(
         f_hz=plan.f_hz,
         power=power,
@@ -197,8 +226,32 @@ def accel_spectrum(accel_ms2: np.ndarray, plan: SpectrumPlan) -> Spectrum:
         window=plan.window,
         bin_width_hz=plan.bin_width_hz,
         enbw_bins=plan.figures.enbw_bins,
-        n_averages=int(n_seg),
+        n_averages=int(n_averages),
         nperseg=plan.nperseg,
+    )
+
+
+def accel_spectrum(accel_ms2: np.ndarray, plan: SpectrumPlan) -> Spectrum:
+    """Welch-averaged acceleration power spectrum, m/s² r.m.s.² per line."""
+    abs2 = _segment_abs2(accel_ms2, plan)
+    return _spectrum(_scale_power(abs2.mean(axis=0), plan), plan, abs2.shape[0])
+
+
+def segment_spectra(accel_ms2: np.ndarray, plan: SpectrumPlan, n_lines: int | None = None) -> tuple[Spectrum, ...]:
+    """The acceleration spectrum of each segment of ``plan`` on its own (no averaging).
+
+    Segment *i* starts at sample i·(nperseg − noverlap); each equals
+    ``accel_spectrum`` of that slice alone, computed in batches of FFTs.
+    ``n_lines`` keeps only the lowest lines (0 Hz up), when only those are read.
+    """
+    powers = _scale_power(_segment_abs2(accel_ms2, plan), plan)
+    keep = powers.shape[1] if n_lines is None else max(1, min(int(n_lines), powers.shape[1]))
+    f_hz = plan.f_hz[:keep]
+    return tuple(
+        Spectrum(f_hz=f_hz, power=row[:keep], quantity="acceleration", unit="m/s2", window=plan.window,
+                 bin_width_hz=plan.bin_width_hz, enbw_bins=plan.figures.enbw_bins, n_averages=1,
+                 nperseg=plan.nperseg)
+        for row in powers
     )
 
 
@@ -273,6 +326,7 @@ def noise_floor(spec: Spectrum, width_hz: float | None = None) -> np.ndarray:
     return floor
 
 
+@functools.lru_cache(maxsize=64)
 def noise_threshold_db(n_averages: int, false_alarm_per_line: float = 1e-5) -> float:
     """Height above the median floor that noise alone exceeds with the given probability per line.
 

@@ -66,6 +66,7 @@ from agent.spectra import (
     find_peaks,
     noise_floor,
     noise_threshold_db,
+    segment_spectra,
     tone_at,
 )
 
@@ -523,6 +524,7 @@ def speed_profile(
     frame_s: float | None = None,
     max_change: float = 0.06,
     degree: int = 3,
+    whole: Spectrum | None = None,
 ) -> SpeedProfile:
     """Speed profile within a capture from the ridge of one tracked harmonic.
 
@@ -533,6 +535,8 @@ def speed_profile(
     (:func:`agent.spectra.tone_at`), divided by h, and a polynomial of
     ``degree`` is least-squares fitted to the ridge to give a smooth profile.
     ``max_change`` bounds the search band (± fraction of the guess).
+    ``whole`` is the capture's :func:`speed_spectrum` when the caller has it
+    already (it is computed otherwise).
     """
     x = np.asarray(accel_ms2, dtype=np.float64)
     if x.ndim != 1 or x.size < 64:
@@ -554,7 +558,8 @@ def speed_profile(
     # choose the harmonic standing highest above the local floor at h × guess
     # (a shaft-locked tone, not the strongest energy in a band that may hold
     # bearing tones), away from the line-frequency family
-    whole = speed_spectrum(x, fs_hz)
+    if whole is None:
+        whole = speed_spectrum(x, fs_hz)
     top = min(whole.fmax_hz, max(harmonics) * speed_hz_guess * (1 + max_change) + 10 * whole.bin_width_hz)
     whole = _truncate(whole, top)
     floor = noise_floor(whole)
@@ -588,8 +593,8 @@ def speed_profile(
             "use a longer frame_s"
         )
     t_c, f_c, w_c = [], [], []
-    for s in starts:
-        sp = accel_spectrum(x[s : s + nfr], plan)
+    # tone_at reads a few lines around the ridge: the frames' lines above it are not kept
+    for s, sp in zip(starts, segment_spectra(x, plan, n_lines=khi + 8)):
         k = klo + int(np.argmax(sp.power[klo : khi + 1]))
         f, amp = tone_at(sp, k)
         t_c.append((s + nfr / 2) / fs_hz)
