@@ -63,6 +63,8 @@ BARE_IMPORT = "import numpy, scipy.signal"
 STAGE_NAMESPACES = ("agent.monitor", "agent.pipeline", "agent.orders")
 #: modules whose functions are never stages (configuration, data types, errors)
 NOT_STAGES = ("agent.config", "agent.model", "agent.errors", "agent.bench")
+#: the step itself (timed as the total), and set-up helpers the bench calls outside the step
+NOT_STAGE_NAMES = ("monitor_step", "initial_state")
 
 
 # ───────────────────────────────────────────────────────────── figures
@@ -191,10 +193,10 @@ def bench_config(fs_hz: float):
 class StageTimer:
     """Wraps the cross-module functions called by the monitor step and records their CPU time.
 
-    Every function object found in a ``STAGE_NAMESPACES`` module that was
-    defined in another ``agent`` module is replaced, in that namespace only,
-    by a wrapper that adds its ``thread_time`` to the path of enclosing
-    stages. :meth:`restore` puts the originals back.
+    Every function object found in a ``STAGE_NAMESPACES`` module (its own
+    helpers and those it imported from other ``agent`` modules) is replaced,
+    in that namespace only, by a wrapper that adds its ``thread_time`` to the
+    path of enclosing stages. :meth:`restore` puts the originals back.
     """
 
     def __init__(self) -> None:
@@ -213,7 +215,7 @@ class StageTimer:
                 if not isinstance(obj, types.FunctionType):
                     continue
                 home = getattr(obj, "__module__", "") or ""
-                if not home.startswith("agent.") or home == modname or home in NOT_STAGES:
+                if not home.startswith("agent.") or home in NOT_STAGES or name in NOT_STAGE_NAMES:
                     continue
                 self._saved.append((mod, name, obj))
                 setattr(mod, name, self._wrap(obj, f"{home.removeprefix('agent.')}.{name}"))
