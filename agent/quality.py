@@ -255,14 +255,17 @@ def check_capture(
     mean = float(x.mean())
     std = float(x.std())
     peak = float(np.abs(x).max())
-    median = float(np.median(x))
+    # one sort gives the median, the distinct levels and the smallest step between them
+    xs = np.sort(x)
+    median = float(np.median(xs))
     figures.update(mean_ms2=mean, std_ms2=std, peak_ms2=peak, rms_ms2=math.sqrt(mean * mean + std * std))
 
     # flatline / dead channel
     repeat = float(np.mean(x[1:] == x[:-1]))
-    levels = np.unique(x)
-    distinct = int(levels.size)
-    step = float(np.diff(levels).min()) if distinct > 1 else 0.0  # quantisation step (or finer)
+    gaps = np.diff(xs)
+    gaps = gaps[gaps > 0]  # the steps between consecutive distinct levels (as np.unique would give them)
+    distinct = int(gaps.size) + 1
+    step = float(gaps.min()) if distinct > 1 else 0.0  # quantisation step (or finer)
     figures.update(repeat_fraction=repeat)
     if distinct == 1:
         flag("flatline", "signal does not vary at all (dead channel)")
