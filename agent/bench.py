@@ -59,7 +59,8 @@ TARGET_SOAK_GROWTH_MB = 5.0
 TARGET_START_RATIO = 1.5
 TARGET_OUTBOX_MSG_S = 1000.0
 BARE_IMPORT = "import numpy, scipy.signal"
-#: modules whose cross-module calls are the stages (the monitor step's call tree)
+#: modules whose own helpers are stages too (the monitor step's top levels); in every
+#: other loaded ``agent`` module only the functions it imports from another are wrapped
 STAGE_NAMESPACES = ("agent.monitor", "agent.pipeline", "agent.orders")
 #: modules whose functions are never stages (configuration, data types, errors)
 NOT_STAGES = ("agent.config", "agent.model", "agent.errors", "agent.bench")
@@ -193,8 +194,8 @@ def bench_config(fs_hz: float):
 class StageTimer:
     """Wraps the cross-module functions called by the monitor step and records their CPU time.
 
-    Every function object found in a ``STAGE_NAMESPACES`` module (its own
-    helpers and those it imported from other ``agent`` modules) is replaced,
+    Every function a loaded ``agent`` module imported from another ``agent``
+    module (and, in ``STAGE_NAMESPACES``, its own helpers too) is replaced,
     in that namespace only, by a wrapper that adds its ``thread_time`` to the
     path of enclosing stages. :meth:`restore` puts the originals back.
     """
@@ -208,14 +209,20 @@ class StageTimer:
     def install(self) -> None:
         for modname in STAGE_NAMESPACES:
             try:
-                mod = importlib.import_module(modname)
+                importlib.import_module(modname)
             except ImportError:
                 continue
+        for modname, mod in sorted(sys.modules.items()):
+            if not modname.startswith("agent.") or modname in NOT_STAGES or mod is None:
+                continue
+            own_helpers = modname in STAGE_NAMESPACES
             for name, obj in list(vars(mod).items()):
                 if not isinstance(obj, types.FunctionType):
                     continue
                 home = getattr(obj, "__module__", "") or ""
                 if not home.startswith("agent.") or home in NOT_STAGES or name in NOT_STAGE_NAMES:
+                    continue
+                if home == modname and not own_helpers:
                     continue
                 self._saved.append((mod, name, obj))
                 setattr(mod, name, self._wrap(obj, f"{home.removeprefix('agent.')}.{name}"))
@@ -361,11 +368,11 @@ def report_analysis(rep: Report, results: list[dict]) -> None:
     rows = []
     for k in keys:
         parts = k.split(" > ")
-        if len(parts) > 3:
+        if len(parts) > 4:
             continue
         name = "  " * (len(parts) - 1) + ("└ " if len(parts) > 1 else "") + parts[-1]
         cells = [r["stages"].get(k) for r in results]
-        if all(c is None or c["median"] < 0.02 for c in cells):
+        if all(c is None or c["median"] < 0.05 for c in cells):
             continue
         rows.append((f"`{name}`",) + tuple("–" if c is None else _fmt_ms(c) for c in cells))
     rep.table(("stage",) + tuple(f"{r['fs_hz']:.0f} Hz" for r in results), rows)
@@ -690,6 +697,23 @@ def bench_outbox(folder: Path, n: int) -> dict:
     return {"n": n, "enqueue_msg_s": n / enq, "drain_msg_s": drained / drain}
 
 
+def fsync_latency(folder: Path, n: int) -> Stats:
+    """Seconds per ``os.fsync`` of a small append: the floor under every durable transaction."""
+    path = folder / "fsync-probe"
+    fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_APPEND, 0o600)
+    ts = []
+    try:
+        for _ in range(n):
+            os.write(fd, b"x" * 300)
+            t0 = time.perf_counter()
+            os.fsync(fd)
+            ts.append(time.perf_counter() - t0)
+    finally:
+        os.close(fd)
+        path.unlink()
+    return Stats.of(ts)
+
+
 def bench_trend(folder: Path, n: int) -> dict:
     from agent.store import Store
 
@@ -706,6 +730,7 @@ def bench_trend(folder: Path, n: int) -> dict:
 def report_storage(rep: Report, quick: bool) -> None:
     n = 300 if quick else 3000
     with tempfile.TemporaryDirectory(prefix="skidvib-bench-") as tmp:
+        fsync = fsync_latency(Path(tmp), 50 if quick else 200)
         ob = bench_outbox(Path(tmp), n)
         tr = bench_trend(Path(tmp), n)
     rep.add("## Storage (SQLite on the temporary directory's disk)")
@@ -716,8 +741,11 @@ def report_storage(rep: Report, quick: bool) -> None:
         ("outbox drain (peek 20, mark sent, ack each)", f"{ob['drain_msg_s']:.0f} msg/s",
          f"≥ {TARGET_OUTBOX_MSG_S:g}: {_meets(ob['drain_msg_s'] >= TARGET_OUTBOX_MSG_S)}"),
         (f"trend database insert, {n} rows", f"{tr['insert_rows_s']:.0f} rows/s", "(one row per capture)"),
+        ("disk: one `fsync` of a 300-byte append (median [IQR])", f"{_fmt_ms(_ms(fsync), 2)} ms",
+         f"→ at most {1 / fsync.median:.0f} synced transactions/s"),
     ])
-    rep.figures["storage"] = {**{f"outbox_{k}": v for k, v in ob.items()}, **{f"trend_{k}": v for k, v in tr.items()}}
+    rep.figures["storage"] = {**{f"outbox_{k}": v for k, v in ob.items()}, **{f"trend_{k}": v for k, v in tr.items()},
+                              "fsync_ms": _ms(fsync)}
 
 
 # ───────────────────────────────────────────────────────────── replay
