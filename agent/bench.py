@@ -606,8 +606,8 @@ def report_processes(rep: Report, quick: bool) -> None:
     bare = bare_import(runs)
     rep.add("## Service: memory and start-up")
     rep.add()
-    captures = 32 if quick else 1500
-    marks = (10, 30) if quick else (100, 1000, 1440)
+    captures = 24 if quick else 1500
+    marks = (8, 20) if quick else (100, 1000, 1440)
     captures = marks[-1] + 1 if not quick else captures
     with tempfile.TemporaryDirectory(prefix="skidvib-bench-") as tmp:
         tmpp = Path(tmp)
@@ -787,7 +787,7 @@ def _replay_figures(quick: bool) -> dict:
     from agent.sources.replay import ReplaySource
 
     scen = load_scenario(find_scenario("demo"))
-    n = 24 if quick else 300
+    n = 12 if quick else 300
     with tempfile.TemporaryDirectory(prefix="skidvib-bench-") as tmp:
         rec = Path(tmp) / "rec"
         simulate(scen, rec, limit=n, jobs=2)

@@ -49,6 +49,6 @@ def test_quick_run_prints_the_figures(tmp_path):
         assert any(k.endswith("spectra.accel_spectrum") for k in a["stages"])
     svc = fig["service"]
     assert svc["service_rss_mb"] > 0 and svc["bare_hwm_mb"] > 0 and svc["start_s"] > 0
-    assert svc["soak_captures"] >= 30
+    assert svc["soak_captures"] >= 20
     st = fig["storage"]
     assert st["outbox_enqueue_msg_s"] > 0 and st["outbox_drain_msg_s"] > 0 and st["trend_insert_rows_s"] > 0
