@@ -288,10 +288,15 @@ def bench_analysis(rep: Report, fs_hz: float, repeats: int, warmup: int) -> dict
 
     for _ in range(warmup):
         step()
-    cpu, wall = _cpu_and_wall(step, repeats)
     x = caps[0].accel_ms2
     np.fft.rfft(x)
-    fft_cpu, _ = _cpu_and_wall(lambda: np.fft.rfft(x), max(50, repeats))
+    cpu, wall, fft_cpu = [], [], []
+    for _ in range(repeats):
+        # the floor is timed between the steps, so both see the same load on a shared machine
+        fft_cpu += _cpu_and_wall(lambda: np.fft.rfft(x), 5)[0]
+        c, w = _cpu_and_wall(step, 1)
+        cpu += c
+        wall += w
 
     timer = StageTimer()
     timer.install()
@@ -314,6 +319,7 @@ def bench_analysis(rep: Report, fs_hz: float, repeats: int, warmup: int) -> dict
         "n_samples": N_SAMPLES,
         "captures_timed": total.n,
         "analysis_cpu_ms": _ms(total),
+        "real_time_factor_best": duration_s / total.lo,
         "analysis_wall_ms": _ms(Stats.of(wall)),
         "rfft_cpu_ms": _ms(fft),
         "fft_ratio": total.median / fft.median,
@@ -344,7 +350,7 @@ def _fmt_ms(d: dict, digits: int = 2) -> str:
 def report_analysis(rep: Report, results: list[dict]) -> None:
     rep.add("## Analysis per capture (monitor_step, one core)")
     rep.add()
-    rep.add("CPU time of the analysing thread, median [inter-quartile range] in ms; "
+    rep.add("CPU time of the analysing thread, median [inter-quartile range] and minimum in ms; "
             f"{results[0]['captures_timed']} captures per rate, state carried from capture to capture "
             f"(state after the run: {results[0]['state_after']}, {results[0]['captures_done']} captures).")
     rep.add()
@@ -354,12 +360,13 @@ def report_analysis(rep: Report, results: list[dict]) -> None:
         rows.append((
             f"{r['fs_hz']:.0f} Hz × {r['n_samples']} ({r['n_samples'] / r['fs_hz']:.2f} s)",
             _fmt_ms(r["analysis_cpu_ms"]),
+            f"{r['analysis_cpu_ms']['min']:.2f}",
             _fmt_ms(r["analysis_wall_ms"]),
             _fmt_ms(r["rfft_cpu_ms"], 3),
             f"{r['fft_ratio']:.1f}× ({_meets(r['fft_ratio'] <= TARGET_FFT_RATIO)})",
-            f"{r['real_time_factor']:.0f} ({_meets(ms_med <= TARGET_ANALYSIS_MS)})",
+            f"{r['real_time_factor']:.0f}; best {r['real_time_factor_best']:.0f} ({_meets(ms_med <= TARGET_ANALYSIS_MS)})",
         ))
-    rep.table(("capture", "analysis CPU ms", "wall ms", "bare rfft ms", f"÷ rfft (≤ {TARGET_FFT_RATIO:g}×)",
+    rep.table(("capture", "analysis CPU ms", "min", "wall ms", "bare rfft ms", f"÷ rfft (≤ {TARGET_FFT_RATIO:g}×)",
                f"real-time factor (≤ {TARGET_ANALYSIS_MS:g} ms)"), rows)
     rep.add("### Per-stage breakdown (CPU ms, median [IQR]; nested stages indented, inclusive of their children)")
     rep.add()
