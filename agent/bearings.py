@@ -159,8 +159,10 @@ def _height_db(ses: EnvelopeSpectrum, width_hz: float, smooth_lines: int = 1) ->
     n = la.size
     padded = np.pad(la, half, mode="edge")
     centres = np.arange(0, n, step)
-    win = np.lib.stride_tricks.sliding_window_view(padded, 2 * half + 1)[centres]
-    floor = np.interp(np.arange(n), centres, np.median(win, axis=1))
+    win = np.lib.stride_tricks.sliding_window_view(padded, 2 * half + 1)[::step]  # rows at the centres, a view
+    # the middle of 2·half + 1 sorted values is the median (np.partition: same value, ~5× quicker than np.median)
+    medians = np.partition(win, half, axis=1)[:, half]
+    floor = np.interp(np.arange(n), centres, medians)
     h = 20.0 * (la - floor)
     h[0] = 0.0
     return h
@@ -344,6 +346,7 @@ def score_bearing(
     views: tuple[EnvelopeSpectrum, ...],
     speed_hz: float,
     settings: BearingSettings = BearingSettings(),
+    heights_cache: dict | None = None,
 ) -> dict[str, DefectScore]:
     """Best score per defect of one bearing over the envelope views.
 
@@ -356,6 +359,10 @@ def score_bearing(
     the factor 8 makes it meet the sharp 8 dB threshold at one line and
     sit above the 99.9th percentile of smoothed noise-only SES lines
     measured on the healthy records (about 4 dB at M = 29).
+
+    ``heights_cache`` (a dict the caller keeps while ``views`` live) shares
+    the line heights between bearings scored on the same views: they depend
+    only on the view, the floor width and the smoothing, not on the bearing.
     """
     o = spec.orders
     defects = {"outer": o.bpfo, "inner": o.bpfi, "ball": 2 * o.bsf, "ball1": o.bsf, "cage": o.ftf}
@@ -367,14 +374,17 @@ def score_bearing(
         view = f"{ses.band_source} {ses.band_hz[0]:.0f}-{ses.band_hz[1]:.0f} Hz"
         prepared.append((ses, sync, view, width))
 
-    cache: dict[tuple[int, int], np.ndarray] = {}
+    cache: dict = {} if heights_cache is None else heights_cache
 
     def heights(i: int, m: int) -> np.ndarray:
-        if (i, m) not in cache:
-            ses, _, _, width = prepared[i]
-            w = width if m == 1 else min(max(width, 10 * m * ses.bin_width_hz), 2 * speed_hz)
-            cache[(i, m)] = _height_db(ses, w, smooth_lines=m)
-        return cache[(i, m)]
+        ses, _, _, width = prepared[i]
+        w = width if m == 1 else min(max(width, 10 * m * ses.bin_width_hz), 2 * speed_hz)
+        key = (id(ses), w, m)
+        if key not in cache:
+            h = _height_db(ses, w, smooth_lines=m)
+            h.setflags(write=False)  # shared: never changed in place
+            cache[key] = h
+        return cache[key]
 
     def run(names, masks):
         best: dict[str, DefectScore] = {}
@@ -510,8 +520,9 @@ def diagnose_bearings(
         plan = SpectrumPlan.build(fs_hz, x.size, lines=min(1 << 14, x.size // 4))
         vel = velocity_spectrum(accel_spectrum(x, plan), f_low_hz=max(0.3 * speed_hz, plan.bin_width_hz))
     findings = []
+    heights: dict = {}  # line heights per view, shared by the bearings (the views live until we return)
     for b in bearings:
-        scores = score_bearing(b, views, speed_hz, settings)
+        scores = score_bearing(b, views, speed_hz, settings, heights)
         top = next(iter(scores.values()))  # the family that explains most
         if top.confidence < settings.report_confidence:
             continue
