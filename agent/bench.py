@@ -23,8 +23,10 @@ Prints (and with ``--out`` writes as Markdown) a dated table of:
 * **replay** — the demo scenario's replay speed (× real time), when the
   replay command is present.
 
-Times are CPU time of the analysing thread (``time.thread_time``), which
-stays honest on a shared, busy machine; wall times are printed beside them.
+Times are CPU time of the benchmark process (``time.process_time``: the
+analysing thread plus any helper threads a stage starts, such as a
+multi-worker FFT), which stays honest on a shared, busy machine; wall times
+are printed beside them.
 Figures are printed, never asserted: targets are checked by reading them.
 """
 
@@ -61,7 +63,7 @@ TARGET_OUTBOX_MSG_S = 1000.0
 BARE_IMPORT = "import numpy, scipy.signal"
 #: modules whose own helpers are stages too (the monitor step's top levels); in every
 #: other loaded ``agent`` module only the functions it imports from another are wrapped
-STAGE_NAMESPACES = ("agent.monitor", "agent.pipeline", "agent.orders")
+STAGE_NAMESPACES = ("agent.monitor", "agent.pipeline", "agent.orders", "agent.bearings", "agent.envelope", "agent.diagnose")
 #: modules whose functions are never stages (configuration, data types, errors)
 NOT_STAGES = ("agent.config", "agent.model", "agent.errors", "agent.bench")
 #: the step itself (timed as the total), and set-up helpers the bench calls outside the step
@@ -196,7 +198,7 @@ class StageTimer:
 
     Every function a loaded ``agent`` module imported from another ``agent``
     module (and, in ``STAGE_NAMESPACES``, its own helpers too) is replaced,
-    in that namespace only, by a wrapper that adds its ``thread_time`` to the
+    in that namespace only, by a wrapper that adds its CPU time (``process_time``) to the
     path of enclosing stages. :meth:`restore` puts the originals back.
     """
 
@@ -238,11 +240,11 @@ class StageTimer:
         def stage(*args, **kwargs):
             timer._stack.append(label)
             path = tuple(timer._stack)
-            t0 = time.thread_time()
+            t0 = time.process_time()
             try:
                 return fn(*args, **kwargs)
             finally:
-                timer._round[path] = timer._round.get(path, 0.0) + time.thread_time() - t0
+                timer._round[path] = timer._round.get(path, 0.0) + time.process_time() - t0
                 timer._stack.pop()
 
         stage.__wrapped__ = fn
@@ -260,9 +262,9 @@ class StageTimer:
 def _cpu_and_wall(fn, repeats: int) -> tuple[list[float], list[float]]:
     cpu, wall = [], []
     for _ in range(repeats):
-        c0, w0 = time.thread_time(), time.perf_counter()
+        c0, w0 = time.process_time(), time.perf_counter()
         fn()
-        cpu.append(time.thread_time() - c0)
+        cpu.append(time.process_time() - c0)
         wall.append(time.perf_counter() - w0)
     return cpu, wall
 
@@ -304,9 +306,9 @@ def bench_analysis(rep: Report, fs_hz: float, repeats: int, warmup: int) -> dict
     try:
         for _ in range(max(5, repeats // 2)):
             timer.start_round()
-            t0 = time.thread_time()
+            t0 = time.process_time()
             step()
-            timer._round[("(total)",)] = time.thread_time() - t0
+            timer._round[("(total)",)] = time.process_time() - t0
             timer.end_round(seen)
     finally:
         timer.restore()
@@ -350,7 +352,7 @@ def _fmt_ms(d: dict, digits: int = 2) -> str:
 def report_analysis(rep: Report, results: list[dict]) -> None:
     rep.add("## Analysis per capture (monitor_step, one core)")
     rep.add()
-    rep.add("CPU time of the analysing thread, median [inter-quartile range] and minimum in ms; "
+    rep.add("CPU time of the process (all its threads), median [inter-quartile range] and minimum in ms; "
             f"{results[0]['captures_timed']} captures per rate, state carried from capture to capture "
             f"(state after the run: {results[0]['state_after']}, {results[0]['captures_done']} captures).")
     rep.add()
@@ -375,11 +377,12 @@ def report_analysis(rep: Report, results: list[dict]) -> None:
     rows = []
     for k in keys:
         parts = k.split(" > ")
-        if len(parts) > 4:
+        if len(parts) > 6:
             continue
         name = "  " * (len(parts) - 1) + ("└ " if len(parts) > 1 else "") + parts[-1]
         cells = [r["stages"].get(k) for r in results]
-        if all(c is None or c["median"] < 0.05 for c in cells):
+        least_ms = 0.05 if len(parts) <= 3 else 0.5  # deep stages only when they weigh
+        if all(c is None or c["median"] < least_ms for c in cells):
             continue
         rows.append((f"`{name}`",) + tuple("–" if c is None else _fmt_ms(c) for c in cells))
     rep.table(("stage",) + tuple(f"{r['fs_hz']:.0f} Hz" for r in results), rows)
