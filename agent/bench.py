@@ -686,10 +686,14 @@ def bench_outbox(folder: Path, n: int) -> dict:
     ob = Outbox(folder / "outbox.sqlite", max_bytes=64 * 1024 * 1024, overflow_topic="skidvib/bench/events")
     payload = json.dumps({"t_utc_s": 1.767e9, "values": {"vel_rms_mm_s": 1.234, "acc_rms_g": 0.0123,
                                                          "speed_hz": 24.6}, "state": "normal"}).encode()
-    t0 = time.perf_counter()
+    t_each = []
     for i in range(n):
+        t0 = time.perf_counter()
         ob.enqueue("skidvib/bench/measurements", payload, kind=Kind.PERIODIC if i % 4 else Kind.KEPT)
-    enq = time.perf_counter() - t0
+        t_each.append(time.perf_counter() - t0)
+    enq = sum(t_each)
+    k = max(1, n // 10)  # the first and the last tenth: a near-empty queue, and one n deep (broker away)
+    shallow, deep = k / sum(t_each[:k]), k / sum(t_each[-k:])
     t0 = time.perf_counter()
     drained = 0
     after = 0
@@ -704,7 +708,8 @@ def bench_outbox(folder: Path, n: int) -> dict:
             drained += 1
     drain = time.perf_counter() - t0
     ob.close()
-    return {"n": n, "enqueue_msg_s": n / enq, "drain_msg_s": drained / drain}
+    return {"n": n, "enqueue_msg_s": n / enq, "enqueue_shallow_msg_s": shallow, "enqueue_deep_msg_s": deep,
+            "drain_msg_s": drained / drain}
 
 
 def fsync_latency(folder: Path, n: int) -> Stats:
@@ -748,6 +753,10 @@ def report_storage(rep: Report, quick: bool) -> None:
     rep.table(("what", "rate", "target"), [
         (f"outbox durable enqueue (synchronous=FULL, WAL), {n} messages", f"{ob['enqueue_msg_s']:.0f} msg/s",
          f"≥ {TARGET_OUTBOX_MSG_S:g}: {_meets(ob['enqueue_msg_s'] >= TARGET_OUTBOX_MSG_S)}"),
+        (f"  of which the first {n // 10} (queue near empty)", f"{ob['enqueue_shallow_msg_s']:.0f} msg/s",
+         f"≥ {TARGET_OUTBOX_MSG_S:g}: {_meets(ob['enqueue_shallow_msg_s'] >= TARGET_OUTBOX_MSG_S)}"),
+        (f"  of which the last {n // 10} (queue {n - n // 10} deep)", f"{ob['enqueue_deep_msg_s']:.0f} msg/s",
+         f"≥ {TARGET_OUTBOX_MSG_S:g}: {_meets(ob['enqueue_deep_msg_s'] >= TARGET_OUTBOX_MSG_S)}"),
         ("outbox drain (peek 20, mark sent, ack each)", f"{ob['drain_msg_s']:.0f} msg/s",
          f"≥ {TARGET_OUTBOX_MSG_S:g}: {_meets(ob['drain_msg_s'] >= TARGET_OUTBOX_MSG_S)}"),
         (f"trend database insert, {n} rows", f"{tr['insert_rows_s']:.0f} rows/s", "(one row per capture)"),
