@@ -43,7 +43,6 @@ import statistics
 import subprocess
 import sys
 import tempfile
-import threading
 import time
 import types
 from dataclasses import dataclass, field

@@ -496,20 +496,24 @@ def parse_config(data: dict, path: str = "<config>") -> AgentConfig:
     return dataclasses.replace(cfg, path=str(path))
 
 
-def load_config(path: str | Path) -> AgentConfig:
-    """Read and validate a TOML config file. Raises ConfigError."""
+def read_toml(path: str | Path, what: str = "file") -> dict:
+    """Parse a TOML file; unreadable files, non-UTF-8 text and syntax errors raise ConfigError."""
     p = Path(path)
     try:
         raw = p.read_bytes()
     except OSError as exc:
-        raise ConfigError(str(p), [f"cannot read file: {exc.strerror or exc}"]) from exc
+        raise ConfigError(str(p), [f"cannot read {what}: {exc.strerror or exc}"]) from exc
     try:
-        data = tomllib.loads(raw.decode("utf-8"))
+        return tomllib.loads(raw.decode("utf-8"))
     except UnicodeDecodeError as exc:
         raise ConfigError(str(p), [f"not UTF-8 text: {exc}"]) from exc
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(str(p), [f"TOML syntax: {exc}"]) from exc
-    return parse_config(data, str(p))
+
+
+def load_config(path: str | Path) -> AgentConfig:
+    """Read and validate a TOML config file. Raises ConfigError."""
+    return parse_config(read_toml(path), str(path))
 
 
 def default_config() -> AgentConfig:

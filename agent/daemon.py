@@ -37,7 +37,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 from agent.config import AgentConfig, load_config, resolve_path
-from agent.errors import AgentError, ConfigError, SourceError, SourceUnavailable, StoreError
+from agent.errors import AgentError, ConfigError, SourceError, StoreError
 from agent.model import Capture, MachineState
 from agent.monitor import CaptureResult, MonitorState, initial_state, monitor_step, source_problem_step
 

@@ -30,7 +30,6 @@ from __future__ import annotations
 
 import datetime as dt
 import math
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -559,18 +558,9 @@ def parse_scenario(data: dict, path: str = "<scenario>") -> Scenario:
 
 def load_scenario(path: str | Path) -> Scenario:
     """Read and validate a scenario TOML file. Raises ConfigError naming the file and keys."""
-    p = Path(path)
-    try:
-        raw = p.read_bytes()
-    except OSError as exc:
-        raise ConfigError(str(p), [f"cannot read scenario file: {exc.strerror or exc}"]) from exc
-    try:
-        data = tomllib.loads(raw.decode("utf-8"))
-    except UnicodeDecodeError as exc:
-        raise ConfigError(str(p), [f"not UTF-8 text: {exc}"]) from exc
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(str(p), [f"TOML syntax: {exc}"]) from exc
-    return parse_scenario(data, str(p))
+    from agent.config import read_toml
+
+    return parse_scenario(read_toml(path, "scenario file"), str(Path(path)))
 
 
 def scenarios_dir() -> Path:

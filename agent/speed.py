@@ -57,7 +57,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
 
 from agent.spectra import (
     Spectrum,
