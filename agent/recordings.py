@@ -128,8 +128,10 @@ def _read_wav(path: Path, channel: str | None):
         with warnings.catch_warnings():
             warnings.simplefilter("error", wavfile.WavFileWarning)
             fs, data = wavfile.read(str(path), mmap=False)
-    except (ValueError, EOFError, OSError, IndexError, KeyError, struct.error, wavfile.WavFileWarning) as exc:
-        raise _fail(path, f"not a readable WAV file ({exc})") from exc
+    except (ValueError, EOFError, OSError, IndexError, KeyError, struct.error, wavfile.WavFileWarning,
+            ArithmeticError, UnboundLocalError, MemoryError) as exc:
+        # ArithmeticError: a header with 0 channels; UnboundLocalError: scipy on a mangled fmt chunk
+        raise _fail(path, f"not a readable WAV file ({type(exc).__name__}: {exc})") from exc
     if np.issubdtype(data.dtype, np.integer):
         info = np.iinfo(data.dtype)
         if data.dtype == np.uint8:
@@ -191,19 +193,42 @@ def _read_csv(path: Path, channel: str | None, fs_hz: float | None):
     return x, fs, ch, meta
 
 
+def _check_npy_header(path: Path, fh, stored_bytes: int, name: str = "") -> None:
+    """Refuse an .npy header that declares more data than the file holds (no huge allocation)."""
+    what = f" array {name!r}" if name else ""
+    try:
+        fmt = np.lib.format
+        version = fmt.read_magic(fh)
+        read = fmt.read_array_header_1_0 if version == (1, 0) else fmt.read_array_header_2_0
+        shape, _, dtype = read(fh)
+    except (ValueError, OSError, EOFError, SyntaxError, TypeError) as exc:
+        raise _fail(path, f"not a readable .npy{what} header ({exc})") from exc
+    declared = int(np.prod(shape, dtype=object)) * dtype.itemsize
+    if declared > stored_bytes:
+        raise _fail(path, f"npy{what} header declares shape {shape} ({declared} bytes) but only "
+                    f"{stored_bytes} bytes are stored (truncated or corrupt file)")
+
+
 def _read_npy(path: Path, channel: str | None):
     try:
+        with open(path, "rb") as fh:
+            _check_npy_header(path, fh, path.stat().st_size)
         arr = np.load(str(path), allow_pickle=False)
     except (ValueError, OSError, EOFError) as exc:
         raise _fail(path, f"not a readable .npy file ({exc})") from exc
-    if not np.issubdtype(arr.dtype, np.number):
-        raise _fail(path, f"holds {arr.dtype}, not numbers")
+    if not np.issubdtype(arr.dtype, np.number) or np.iscomplexobj(arr):
+        raise _fail(path, f"holds {arr.dtype}, not real numbers")
     x, ch = _pick_column(path, arr.astype(np.float64), channel)
     return x, None, ch, {}
 
 
 def _read_npz(path: Path, channel: str | None):
     try:
+        with zipfile.ZipFile(path) as zf:
+            for info in zf.infolist():
+                if info.filename.endswith(".npy"):
+                    with zf.open(info) as fh:
+                        _check_npy_header(path, fh, info.file_size, info.filename[:-4])
         with np.load(str(path), allow_pickle=False) as z:
             data = {k: z[k] for k in z.files}
     except (ValueError, OSError, EOFError, zipfile.BadZipFile) as exc:
@@ -225,6 +250,8 @@ def _choose_named(path: Path, arrays: dict, channel: str | None):
         channel = next(iter(arrays))
     if channel not in arrays:
         raise _fail(path, f"no variable {channel!r}; available: {', '.join(sorted(arrays))}")
+    if np.iscomplexobj(arrays[channel]):
+        raise _fail(path, f"variable {channel!r} holds complex numbers, not samples")
     arr = np.asarray(arrays[channel], dtype=np.float64)
     x, _ = _pick_column(path, np.squeeze(arr) if arr.ndim > 1 and 1 in arr.shape else arr, None)
     return x, channel
