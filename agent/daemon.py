@@ -75,6 +75,7 @@ class Health:
     reload_failures: int = 0
     snapshots: int = 0
     last_error: str = ""
+    storage_problem: str = ""  # the last store/outbox write failure; "" once writes succeed again
     last_capture_utc_s: float = 0.0
     extra: dict = field(default_factory=dict)
 
@@ -91,6 +92,7 @@ class Health:
             "snapshots_count": self.snapshots,
             "last_capture_utc_s": self.last_capture_utc_s,
             "last_error": self.last_error,
+            "storage_problem": self.storage_problem,
             **self.extra,
         }
 
@@ -327,6 +329,7 @@ class Daemon:
     def _count_store_error(self, exc: Exception) -> None:
         self.health.store_errors += 1
         self.health.last_error = str(exc)
+        self.health.storage_problem = str(exc)
         log_event("store_error", "warning", error=str(exc))
 
     # ── remote controls ──
@@ -445,6 +448,8 @@ class Daemon:
         except (AgentError, ValueError) as exc:
             self.health.publish_errors += 1
             self.health.last_error = str(exc)
+            if isinstance(exc, StoreError):  # the outbox could not write
+                self.health.storage_problem = str(exc)
             log_event("publish_error", "warning", error=str(exc))
 
     def _publish_health(self, now_mono: float) -> None:
@@ -491,6 +496,7 @@ class Daemon:
             try:
                 if result.seq >= 0:  # every capture, a sensor-fault one too (its levels are NaN)
                     self.store.add_trend(result.t_utc_s, result.state.value, result.speed_hz, result.features)
+                    self.health.storage_problem = ""  # writes work (again)
             except StoreError as exc:
                 self._count_store_error(exc)
             due = self.mono() >= self.next_scheduled_snapshot_mono and self.cfg.store.snapshot_every_h > 0

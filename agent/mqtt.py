@@ -37,7 +37,7 @@ import paho.mqtt.client as paho
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 
-from agent.errors import PublishError
+from agent.errors import PublishError, StoreError
 from agent.outbox import Kind, Outbox, new_message_id
 
 log = logging.getLogger("agent.mqtt")
@@ -281,7 +281,7 @@ class MqttLink:
         self._password = read_password(settings.password_file)
         self._events: queue.SimpleQueue = queue.SimpleQueue()
         self.requests: queue.Queue[Inbound] = queue.Queue(maxsize=settings.requests_max)
-        self._direct: queue.Queue[tuple] = queue.Queue(maxsize=64)
+        self._direct: queue.Queue[tuple] = queue.Queue(maxsize=64)  # replies, outbox bypass
         self._protocol = "3.1.1" if settings.protocol == "3.1.1" else "5"
         self._client: paho.Client | None = None
         self._thread: threading.Thread | None = None
@@ -292,7 +292,7 @@ class MqttLink:
         self._last_seq = 0
         self.counters = {"connects": 0, "disconnects": 0, "published": 0, "acked": 0,
                          "rejected": 0, "replies_dropped": 0, "requests_dropped": 0,
-                         "connect_failures": 0}
+                         "connect_failures": 0, "outbox_bypassed": 0}
         self.last_error = ""
 
     # -- public API -------------------------------------------------------
@@ -317,23 +317,34 @@ class MqttLink:
              retain: bool = False, replace_key: str | None = None) -> int | None:
         """Queue a durable QoS 1 message on ``<base>/<suffix>``; returns the outbox seq."""
         body = encode(payload)
-        seq = self.outbox.enqueue(f"{self.topics.base}/{suffix}", body, kind=kind,
-                                  msg_id=str(payload.get("id") or new_message_id()),
-                                  qos=1, retain=retain, replace_key=replace_key)
+        topic = f"{self.topics.base}/{suffix}"
+        try:
+            seq = self.outbox.enqueue(topic, body, kind=kind,
+                                      msg_id=str(payload.get("id") or new_message_id()),
+                                      qos=1, retain=retain, replace_key=replace_key)
+        except StoreError:
+            # the disk refuses (full): while connected, publish without the on-disk
+            # guarantee rather than not at all; otherwise the caller counts the loss
+            if not self.connected or not self._put_direct(topic, body, None, retain):
+                raise
+            self.counters["outbox_bypassed"] += 1
+            return None
         self._events.put(("wake",))
         return seq
 
-    def reply(self, topic: str, payload: bytes, *, correlation_data: bytes | None = None) -> bool:
-        """Publish a reply now (QoS 1, not durable). False if it had to be dropped."""
-        if not self.connected:
-            self.counters["replies_dropped"] += 1
-            return False
+    def _put_direct(self, topic: str, body: bytes, corr: bytes | None, retain: bool) -> bool:
         try:
-            self._direct.put_nowait((topic, bytes(payload), correlation_data))
+            self._direct.put_nowait((topic, bytes(body), corr, retain))
         except queue.Full:
-            self.counters["replies_dropped"] += 1
             return False
         self._events.put(("wake",))
+        return True
+
+    def reply(self, topic: str, payload: bytes, *, correlation_data: bytes | None = None) -> bool:
+        """Publish a reply now (QoS 1, not durable). False if it had to be dropped."""
+        if not self.connected or not self._put_direct(topic, payload, correlation_data, False):
+            self.counters["replies_dropped"] += 1
+            return False
         return True
 
     def stop(self, timeout_s: float = 5.0) -> None:
@@ -512,10 +523,11 @@ class MqttLink:
             return
         while True:
             try:
-                topic, body, corr = self._direct.get_nowait()
+                topic, body, corr, retain = self._direct.get_nowait()
             except queue.Empty:
                 break
-            info = c.publish(topic, body, qos=1, properties=self._props(correlation=corr))
+            info = c.publish(topic, body, qos=1, retain=retain,
+                             properties=self._props(correlation=corr))
             if info.rc == paho.MQTT_ERR_SUCCESS:
                 self._direct_inflight.add(info.mid)
             else:

@@ -216,7 +216,8 @@ class Outbox:
             db.execute("COMMIT")
             return cur.lastrowid
         except BaseException:
-            db.execute("ROLLBACK")
+            if db.in_transaction:  # SQLite has already rolled back after e.g. SQLITE_FULL
+                db.execute("ROLLBACK")
             raise
 
     def _shed(self, db, kind: Kind, need: int) -> int:

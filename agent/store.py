@@ -271,7 +271,8 @@ class Store:
                                       (now - self.hourly_keep_s,)).rowcount
                     db.execute("COMMIT")
                 except BaseException:
-                    db.execute("ROLLBACK")
+                    if db.in_transaction:  # SQLite may have rolled back already (disk full)
+                        db.execute("ROLLBACK")
                     raise
         except sqlite3.Error as exc:
             raise self._fail(StoreError(f"trend database: cannot downsample: {exc}")) from exc

@@ -1,0 +1,110 @@
+"""Disk full: the state directory on a small tmpfs (``mount -t tmpfs -o size=...``, as
+root; skipped with the reason otherwise). The daemon, fed captures, fills it to the
+last byte mid-run: it keeps monitoring and publishing (state changes, measurements
+and events still reach a real broker), reports the storage trouble in its health
+message, and goes back to durable operation when space returns.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import subprocess
+import threading
+import time
+
+import pytest
+
+from agent.config import load_config
+from agent.daemon import Daemon
+from tests.broker import Subscriber
+from tests.test_daemon import ScriptedSource, write_config
+
+BASE = "skv/plant1/p-201"
+
+
+@pytest.fixture
+def small_fs(tmp_path):
+    mnt = tmp_path / "disk"
+    mnt.mkdir()
+    r = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=8m", "tmpfs", str(mnt)], capture_output=True)
+    if r.returncode != 0:
+        pytest.skip("cannot mount a small tmpfs here (needs root): " + r.stderr.decode()[:80])
+    yield mnt
+    subprocess.run(["umount", "-l", str(mnt)], check=False)
+
+
+def _fill(path):
+    with open(path, "wb", buffering=0) as fh:
+        try:
+            while True:
+                fh.write(b"\0" * 65536)
+        except OSError:
+            pass
+        try:
+            while True:
+                fh.write(b"\0" * 512)
+        except OSError:
+            pass
+
+
+class HookedSource(ScriptedSource):
+    """ScriptedSource that calls ``hooks[i]()`` before delivering capture ``i`` (1-based)."""
+
+    def __init__(self, cfg, script, hooks):
+        super().__init__(cfg, script)
+        self.hooks = hooks
+
+    def read(self, timeout_s):
+        hook = self.hooks.get(self.i + 1)
+        if hook is not None:
+            hook()
+        return super().read(timeout_s)
+
+
+def test_daemon_carries_on_through_a_full_disk(tmp_path, small_fs, mqtt_broker):
+    cfg_path = write_config(tmp_path, mqtt_broker.port)
+    text = cfg_path.read_text().replace(f'state_dir = "{tmp_path / "state"}"', f'state_dir = "{small_fs / "state"}"')
+    cfg_path.write_text(text)
+    cfg = load_config(cfg_path)
+    cfg = dataclasses.replace(cfg, store=dataclasses.replace(cfg.store, health_every_s=1.0))
+    filler = small_fs / "filler"
+    # healthy, full disk from capture 4 (a danger episode while full), space back from capture 10
+    script = [1.0, 1.0, 1.0, 1.0, 2.5, 2.5, 1.0, 1.0, 1.0, 1.0, 2.5, 1.0, 1.0, 1.0]
+    src = HookedSource(cfg, script, {4: lambda: _fill(filler), 10: lambda: filler.unlink()})
+    sub = Subscriber(mqtt_broker, "skv/#")
+    fast = lambda: time.monotonic() * 50.0  # noqa: E731 — 2.56 s between captures become 51 ms
+    d = Daemon(cfg, source_factory=lambda c: src, mono=fast)
+    t = threading.Thread(target=d.run)
+    t.start()
+    t.join(120)
+    assert not t.is_alive()
+    msgs = sub.collect_until(lambda ms: any(m.topic == f"{BASE}/availability" and m.payload == b"offline"
+                                            for m in ms), 15)
+    sub.close()
+    by: dict[str, list] = {}
+    for m in msgs:
+        by.setdefault(m.topic.rsplit("/", 1)[-1], []).append(json.loads(m.payload) if m.payload[:1] == b"{" else m.payload)
+    # monitoring went on: every capture analysed
+    assert d.health.captures_done == len(script)
+    # the storage trouble was seen and reported
+    assert d.health.store_errors > 0
+    health = by["health"]
+    assert any(h["store_errors_count"] > 0 and "disk full" in h["storage_problem"] for h in health), health
+    assert health[-1]["storage_problem"] == ""  # cleared once writes worked again
+    # publishing went on: both danger episodes (one while the disk was full) reached the broker
+    changes = [(e["previous_state"], e["state"]) for e in by["events"] if e["type"] == "state_change"]
+    assert changes.count(("normal", "danger")) == 2 and changes.count(("danger", "normal")) == 2, changes
+    assert len(by["measurements"]) == len(script)
+    # recovered: rows after the space came back are stored; the outbox drained
+    import sqlite3
+
+    db = sqlite3.connect(small_fs / "state" / "trend.sqlite")
+    assert db.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    ts = [r[0] for r in db.execute("SELECT t_utc_s FROM trend ORDER BY rowid")]
+    assert ts[-1] == src.t0 + 60.0 * len(script)  # the last capture's row is there
+    assert len(ts) >= 3 + 5
+    ob = sqlite3.connect(small_fs / "state" / "outbox.sqlite")
+    assert ob.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    assert ob.execute("SELECT COUNT(*) FROM outbox").fetchone()[0] == 0
+    assert d.link.counters["outbox_bypassed"] > 0  # published straight while the disk was full
