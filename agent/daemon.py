@@ -45,6 +45,11 @@ QUEUE_CAPTURES = 2
 SAVE_EVERY_CAPTURES = 10
 BEAT_SLICE_S = 1.0   # longest single wait of the acquisition loop (heartbeat period)
 BEAT_SLACK_S = 5.0   # scheduling slack before a silent acquisition counts as hung
+#: the wall clock moved this much against the monotonic clock: a clock jump (NTP step, RTC reset)
+CLOCK_JUMP_S = 60.0
+#: after a clock jump, age-based retention (trend downsampling) waits this long (monotonic) for the
+#: clock to settle, so rows are never folded or deleted by a clock that is wrong for a while
+HOUSEKEEPING_HOLD_S = 86400.0
 BAD_STATES = (MachineState.ALERT, MachineState.DANGER)
 
 
@@ -74,6 +79,7 @@ class Health:
     reloads: int = 0
     reload_failures: int = 0
     snapshots: int = 0
+    clock_jumps: int = 0
     last_error: str = ""
     storage_problem: str = ""  # the last store/outbox write failure; "" once writes succeed again
     last_capture_utc_s: float = 0.0
@@ -90,6 +96,7 @@ class Health:
             "reloads_count": self.reloads,
             "reload_failures_count": self.reload_failures,
             "snapshots_count": self.snapshots,
+            "clock_jumps_count": self.clock_jumps,
             "last_capture_utc_s": self.last_capture_utc_s,
             "last_error": self.last_error,
             "storage_problem": self.storage_problem,
@@ -177,7 +184,13 @@ class Acquisition(threading.Thread):
                 caps = src.read(timeout_s)
                 self._put(("captures", tuple(caps)))
             except EndOfSource:
-                self._put(("end", None))
+                # the end must arrive even when analysis is behind (else the loop waits forever)
+                while not self.stop_event.is_set():
+                    try:
+                        self.out.put(("end", None), timeout=min(0.5, BEAT_SLICE_S))
+                        break
+                    except queue.Full:
+                        self.beat_mono = self.mono()
                 break
             except SourceError as exc:
                 self.health.source_errors += 1
@@ -232,6 +245,8 @@ class Daemon:
         self.next_health_mono = 0.0
         self.last_state_published: tuple | None = None
         self.next_housekeeping_mono = mono() + 3600.0
+        self.housekeeping_hold_until_mono = 0.0
+        self._wall_minus_mono = wall() - mono()
 
     # ── edges ──
     def _open_edges(self) -> None:
@@ -478,9 +493,23 @@ class Daemon:
             self.health.publish_errors += 1
             self.health.last_error = str(exc)
 
+    def _check_clock(self) -> None:
+        """Notice a wall-clock jump (the monotonic clock is the reference) and hold retention."""
+        now_mono = self.mono()
+        offset = self.wall() - now_mono
+        jump_s = offset - self._wall_minus_mono
+        if abs(jump_s) > CLOCK_JUMP_S:
+            self.health.clock_jumps += 1
+            self.housekeeping_hold_until_mono = now_mono + HOUSEKEEPING_HOLD_S
+            log_event("clock_jump", "warning", delta_s=jump_s, housekeeping_hold_s=HOUSEKEEPING_HOLD_S)
+        self._wall_minus_mono = offset
+
     def _housekeeping(self, now_mono: float) -> None:
-        """Hourly: fold old trend rows into hourly rows, apply snapshot retention."""
+        """Hourly: fold old trend rows into hourly rows, apply snapshot retention (not while
+        the wall clock is settling after a jump: ages measured by it would be wrong)."""
         if self.store is None or now_mono < self.next_housekeeping_mono:
+            return
+        if now_mono < self.housekeeping_hold_until_mono:
             return
         self.next_housekeeping_mono = now_mono + 3600.0
         try:
@@ -534,6 +563,7 @@ class Daemon:
     def _process(self, item) -> bool:
         """Handle one queue item; False when the source has ended."""
         kind, payload = item
+        self._check_clock()
         now_utc = self.wall()
         if kind == "end":
             log_event("source_end")

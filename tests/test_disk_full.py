@@ -67,14 +67,14 @@ def test_daemon_carries_on_through_a_full_disk(tmp_path, small_fs, mqtt_broker):
     text = cfg_path.read_text().replace(f'state_dir = "{tmp_path / "state"}"', f'state_dir = "{small_fs / "state"}"')
     cfg_path.write_text(text)
     cfg = load_config(cfg_path)
-    cfg = dataclasses.replace(cfg, store=dataclasses.replace(cfg.store, health_every_s=1.0))
+    cfg = dataclasses.replace(cfg, store=dataclasses.replace(cfg.store, health_every_s=1.0),
+                              source=dataclasses.replace(cfg.source, interval_s=0.25))
     filler = small_fs / "filler"
     # healthy, full disk from capture 4 (a danger episode while full), space back from capture 10
     script = [1.0, 1.0, 1.0, 1.0, 2.5, 2.5, 1.0, 1.0, 1.0, 1.0, 2.5, 1.0, 1.0, 1.0]
     src = HookedSource(cfg, script, {4: lambda: _fill(filler), 10: lambda: filler.unlink()})
     sub = Subscriber(mqtt_broker, "skv/#")
-    fast = lambda: time.monotonic() * 50.0  # noqa: E731 — 2.56 s between captures become 51 ms
-    d = Daemon(cfg, source_factory=lambda c: src, mono=fast)
+    d = Daemon(cfg, source_factory=lambda c: src)
     t = threading.Thread(target=d.run)
     t.start()
     t.join(120)

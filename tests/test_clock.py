@@ -1,0 +1,126 @@
+"""Wall-clock jumps (NTP steps, a lost real-time clock) while the daemon runs.
+
+The daemon takes ``mono``/``wall`` callables; here the wall clock is the monotonic clock
+plus an offset that jumps two years forward, back, and to 1970 (captures 0.2 s apart). Captures are stamped from the wall clock, as the real sources do. Expected:
+scheduling follows the monotonic clock (every capture taken), every capture leaves
+one trend row in arrival order, alerts are queued in the order they happened, and no
+retention step folds or deletes rows on the word of a clock that just jumped.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import sqlite3
+import time
+
+import pytest
+
+from agent.config import load_config
+from agent.daemon import Daemon
+from agent.model import Capture
+from tests.test_daemon import ScriptedSource, write_config
+
+YEAR_S = 365.25 * 86400
+
+
+def _fast(cfg, interval_s=0.2):
+    """Captures ``interval_s`` apart (faster than a real capture could be taken)."""
+    return dataclasses.replace(cfg, source=dataclasses.replace(cfg.source, interval_s=interval_s))
+
+
+class WallStampedSource(ScriptedSource):
+    """Scripted levels, stamped by the (injected) wall clock; ``hooks[i]`` runs before capture i."""
+
+    def __init__(self, cfg, script, wall, hooks):
+        super().__init__(cfg, script)
+        self.wall, self.hooks = wall, hooks
+
+    def read(self, timeout_s):
+        hook = self.hooks.get(self.i + 1)
+        if hook is not None:
+            hook()
+        (cap,) = super().read(timeout_s)
+        return (dataclasses.replace(cap, t0_utc_s=self.wall()),)
+
+
+@pytest.mark.parametrize("jump_s", [2 * YEAR_S, -2 * YEAR_S, -56 * YEAR_S], ids=["fwd2y", "back2y", "to1970"])
+def test_clock_jumps_lose_and_reorder_nothing(tmp_path, jump_s):
+    cfg = _fast(load_config(write_config(tmp_path, 1)))
+    mono = time.monotonic
+    offset = [1_796_169_600.0]
+    wall = lambda: offset[0] + mono()  # noqa: E731
+    d: Daemon | None = None
+
+    def jump(delta):
+        def f():
+            offset[0] += delta
+        return f
+
+    def hour_passed():  # make the hourly housekeeping due now
+        d.next_housekeeping_mono = 0.0
+
+    # healthy; clock jumps at 6; alert episode 8-9 under the wrong clock; housekeeping due at 10;
+    # clock corrected at 12; another alert 14; housekeeping due at 16
+    script = [1.0] * 7 + [2.5, 2.5] + [1.0] * 4 + [2.5] + [1.0] * 4
+    hooks = {6: jump(jump_s), 10: hour_passed, 12: jump(-jump_s), 16: hour_passed}
+    src = WallStampedSource(cfg, script, wall, hooks)
+    d = Daemon(cfg, source_factory=lambda c: src, use_mqtt=False, mono=mono, wall=wall)
+    d.run()
+    assert d.health.captures_done == len(script)  # scheduling did not stall or skip
+    assert d.health.clock_jumps == 2
+    db = sqlite3.connect(tmp_path / "state" / "trend.sqlite")
+    rows = db.execute("SELECT t_utc_s, level, n, state FROM trend ORDER BY rowid").fetchall()
+    assert [r[1] for r in rows] == [0] * len(script)  # nothing folded, nothing deleted
+    states = [r[3] for r in rows]
+    assert states == ["normal"] * 7 + ["danger"] * 2 + ["normal"] * 4 + ["danger"] + ["normal"] * 4
+    # the stamps are what the clock said (not rewritten), in arrival order
+    ts = [r[0] for r in rows]
+    assert all(abs((ts[i + 1] - ts[i]) - (jump_s if i == 4 else -jump_s if i == 10 else 0)) < 3600
+               for i in range(len(ts) - 1))
+
+
+def test_alerts_keep_their_order_across_a_backward_jump(tmp_path, mqtt_broker):
+    """Alerts queued in the outbox go out in the order they happened even when the second one
+    is stamped years before the first."""
+    from tests.broker import Subscriber
+
+    cfg = _fast(load_config(write_config(tmp_path, mqtt_broker.port)))
+    mono = time.monotonic
+    offset = [1_796_169_600.0]
+    wall = lambda: offset[0] + mono()  # noqa: E731
+
+    def back():
+        offset[0] -= 2 * YEAR_S
+
+    script = [1.0, 2.5, 1.0, 1.0, 2.5, 1.0]
+    src = WallStampedSource(cfg, script, wall, {4: back})
+    sub = Subscriber(mqtt_broker, "skv/plant1/p-201/events")
+    d = Daemon(cfg, source_factory=lambda c: src, mono=mono, wall=wall)
+    d.run()
+    evs = [json.loads(m.payload) for m in sub.collect_until(
+        lambda ms: sum(json.loads(m.payload)["type"] == "state_change" for m in ms) >= 5, 15)]
+    sub.close()
+    changes = [(e["previous_state"], e["state"]) for e in evs if e["type"] == "state_change"
+               and e["previous_state"] in ("normal", "danger")]
+    assert changes == [("normal", "danger"), ("danger", "normal"), ("normal", "danger"),
+                       ("danger", "normal")], changes
+    stamps = [e["t_utc_s"] for e in evs if e["type"] == "state_change" and e["state"] == "danger"]
+    assert stamps[1] < stamps[0]  # the clock said so; the order of arrival still follows events
+
+
+def test_end_of_source_arrives_when_analysis_is_behind(tmp_path):
+    """A finite source (replay) read much faster than analysis: captures are dropped as
+    designed, but the end still arrives and the daemon stops by itself."""
+    cfg = load_config(write_config(tmp_path, 1))
+    t0 = time.monotonic()
+    mono = lambda: (time.monotonic() - t0) * 100_000.0  # noqa: E731 — no pause between reads
+    src = ScriptedSource(cfg, [1.0] * 12)
+    d = Daemon(cfg, source_factory=lambda c: src, use_mqtt=False, mono=mono)
+    import threading
+
+    t = threading.Thread(target=d.run, daemon=True)
+    t.start()
+    t.join(60)
+    assert not t.is_alive(), "the daemon never saw the end of the source"
+    assert d.health.captures_done + d.health.captures_dropped == 12 and d.health.captures_dropped > 0
