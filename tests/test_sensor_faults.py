@@ -1,0 +1,83 @@
+"""Every simulated sensor fault, through the daemon: the capture is judged ``sensor_fault``
+(no machine judgement from bad data) and the agent recovers by itself when the sensor does.
+The quality gate's own thresholds are tested in tests/test_quality.py; the serial
+unplug at source level in tests/test_serial_adc.py. Here: the service end to end."""
+
+from __future__ import annotations
+
+import dataclasses
+import sqlite3
+import time
+
+import numpy as np
+import pytest
+
+from agent.config import load_config
+from agent.daemon import Daemon
+from agent.model import Capture
+from agent.simulator import SENSOR_FAULTS, Faults, SensorFault, synthesize
+from agent.sources.base import EndOfSource, Source
+from agent.sources.synthetic import steady_scenario
+from tests.test_daemon import write_config
+
+#: a level per kind that a real fault of that kind would show (g; see SensorFault). bias_drift:
+#: the gate flags a mean above 25 % of the 50 g full scale (quality.max_dc_fraction); 10 g
+#: doubling to 20 g averages 30 %
+LEVELS = {"clipping": 0.05, "flatline": 0.0, "bias_drift": 10.0, "intermittent": 20.0, "dropout": 0.3}
+
+
+class FaultySensor(Source):
+    """Simulated pump captures; ``plan[i]`` is None (healthy) or a sensor fault kind."""
+
+    kind = "faulty"
+
+    def __init__(self, cfg, plan):
+        self.cfg, self.plan, self.i = cfg, plan, 0
+        s = steady_scenario(fs_hz=cfg.source.fs_hz, n_samples=cfg.source.n_samples, speed_rpm=1478.0)
+        self.machine, self.point = s.machine, s.point_at(0.0)
+        self.daemon = None
+
+    def open(self):
+        pass
+
+    def close(self):
+        pass
+
+    def read(self, timeout_s):
+        while self.daemon is not None and not self.daemon.queue.empty():
+            time.sleep(0.002)
+        if self.i >= len(self.plan):
+            raise EndOfSource()
+        kind = self.plan[self.i]
+        self.i += 1
+        faults = Faults(sensor=(SensorFault(kind, LEVELS[kind]),) if kind else ())
+        x, truth = synthesize(self.machine, self.point, faults, self.cfg.source.fs_hz,
+                              self.cfg.source.n_samples, seed=(7, self.i))
+        return (Capture(np.asarray(x, dtype=np.float64), self.cfg.source.fs_hz,
+                        t0_utc_s=1_796_169_600.0 + 60.0 * self.i, channel="pump DE",
+                        source_id="faulty", seq=self.i, full_scale_ms2=truth["full_scale_ms2"]),)
+
+
+def test_every_simulated_sensor_fault_kind_is_covered():
+    assert set(LEVELS) == set(SENSOR_FAULTS)  # a new simulated fault must be added here
+
+
+@pytest.mark.slow
+def test_every_simulated_sensor_fault_gives_sensor_fault_and_recovers(tmp_path):
+    cfg = load_config(write_config(tmp_path, 1))
+    cfg = dataclasses.replace(cfg, source=dataclasses.replace(cfg.source, interval_s=0.05))
+    plan = [None, None]
+    for kind in SENSOR_FAULTS:
+        plan += [kind, kind, None, None]
+    src = FaultySensor(cfg, plan)
+    d = src.daemon = Daemon(cfg, source_factory=lambda c: src, use_mqtt=False)
+    d.run()
+    assert d.health.captures_done == len(plan)
+    db = sqlite3.connect(tmp_path / "state" / "trend.sqlite")
+    states = [s for (s,) in db.execute("SELECT state FROM trend WHERE level = 0 ORDER BY rowid")]
+    assert len(states) == len(plan)
+    for i, kind in enumerate(plan):
+        if kind:
+            assert states[i] == "sensor_fault", (i, kind, states)
+        else:
+            assert states[i] != "sensor_fault", (i, states)  # recovered by itself
