@@ -8,6 +8,7 @@ from __future__ import annotations
 import dataclasses
 import sqlite3
 import time
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -81,3 +82,76 @@ def test_every_simulated_sensor_fault_gives_sensor_fault_and_recovers(tmp_path):
             assert states[i] == "sensor_fault", (i, kind, states)
         else:
             assert states[i] != "sensor_fault", (i, states)  # recovered by itself
+
+
+@pytest.mark.slow
+def test_serial_port_vanishing_mid_capture_gives_sensor_fault_then_recovers(tmp_path):
+    """A serial ADC on a pty pair (socat); socat is killed (-9) mid-capture and restarted:
+    the daemon reports sensor_fault and goes back to judging the machine by itself."""
+    import shutil
+    import signal
+    import subprocess
+    import sys
+    import threading
+
+    from tests.test_serial_adc import _start_socat
+
+    if shutil.which("socat") is None:
+        pytest.skip("needs the Debian package socat")
+    cfg = load_config(write_config(tmp_path, 1))
+    cfg = dataclasses.replace(cfg, source=dataclasses.replace(
+        cfg.source, kind="serial", fs_hz=8000.0, capture_s=0.5, interval_s=0.5,
+        serial=dataclasses.replace(cfg.source.serial, port=str(tmp_path / "ttyB"), channels=1,
+                                   baud=921600, full_scale_v=2.5)))
+    socat = {"p": _start_socat(tmp_path)}
+    root = Path(__file__).resolve().parents[1]
+    writer = subprocess.Popen([sys.executable, str(root / "tests" / "serial_pump_writer.py"),
+                               str(tmp_path / "ttyA"), "9"])
+    states: list[str] = []
+
+    class Recording(Daemon):
+        def _handle_result(self, result, caps):
+            states.append(result.state.value)
+            super()._handle_result(result, caps)
+
+    d = Recording(cfg, use_mqtt=False)
+
+    def outside_world():
+        time.sleep(3.2)  # mid-capture: captures are 0.5 s long, back to back
+        socat["p"].send_signal(signal.SIGKILL)
+        socat["p"].wait(5)
+        time.sleep(1.0)
+        socat["p"] = _start_socat(tmp_path)
+        writer.wait(20)
+        time.sleep(0.3)
+        d.stop_event.set()
+
+    hand = threading.Thread(target=outside_world)
+    hand.start()
+    try:
+        d.run()
+    finally:
+        hand.join(30)
+        writer.kill()
+        socat["p"].kill()
+        socat["p"].wait(5)
+    print("states:", states, "source errors:", d.health.source_errors)
+    assert d.health.source_errors >= 1
+    first_fault = states.index("sensor_fault")
+    assert first_fault >= 2 and "sensor_fault" not in states[:first_fault]  # healthy before
+    after = states[first_fault:]
+    recovered = [i for i, s in enumerate(after) if s != "sensor_fault"]
+    assert recovered and all(s != "sensor_fault" for s in after[recovered[0]:]), states
+    assert len(after) - recovered[0] >= 3  # judged the machine again for several captures
+
+
+def test_speed_profile_on_a_short_capture_is_a_value_error_not_a_crash():
+    """Found by the serial test above: 0.5 s captures leave no harmonic to follow; the
+    profile must say so with ValueError (which the order view catches), not TypeError."""
+    from agent.speed import speed_profile
+
+    fs, f1 = 8000.0, 1480 / 60.0
+    t = np.arange(4000) / fs
+    x = np.sin(2 * np.pi * f1 * t) + 0.5 * np.sin(2 * np.pi * 6 * f1 * t)
+    with pytest.raises(ValueError, match="no harmonic"):
+        speed_profile(x, fs, f1, line_hz=50.0)
