@@ -281,7 +281,9 @@ def _read_mat(path: Path, channel: str | None):
 
     try:
         mat = loadmat(str(path), squeeze_me=False, struct_as_record=True)
-    except (MatReadError, ValueError, OSError, EOFError, TypeError, NotImplementedError) as exc:
+    except (MatReadError, ValueError, OSError, EOFError, TypeError, NotImplementedError, IndexError,
+            KeyError, struct.error, ArithmeticError, MemoryError, UnicodeDecodeError) as exc:
+        # IndexError: scipy on a file cut inside its header; MemoryError: a lying element size
         hint = " (MATLAB v7.3/HDF5 files are not supported; save with -v7)" if "HDF" in str(exc) else ""
         raise _fail(path, f"not a readable .mat file ({exc}){hint}") from exc
     arrays: dict = {}
