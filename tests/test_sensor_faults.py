@@ -21,10 +21,8 @@ from agent.sources.base import EndOfSource, Source
 from agent.sources.synthetic import steady_scenario
 from tests.test_daemon import write_config
 
-#: a level per kind that a real fault of that kind would show (g; see SensorFault). bias_drift:
-#: the gate flags a mean above 25 % of the 50 g full scale (quality.max_dc_fraction); 10 g
-#: doubling to 20 g averages 30 %
-LEVELS = {"clipping": 0.05, "flatline": 0.0, "bias_drift": 10.0, "intermittent": 20.0, "dropout": 0.3}
+#: a level per kind that a real fault of that kind would show (g; see SensorFault)
+LEVELS = {"clipping": 0.05, "flatline": 0.0, "bias_drift": 3.0, "intermittent": 20.0, "dropout": 0.3}
 
 
 class FaultySensor(Source):
