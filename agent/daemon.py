@@ -479,6 +479,7 @@ class Daemon:
             st = self.link.outbox.stats()
             extra["outbox_depth_count"] = st.depth
             extra["outbox_bytes_count"] = st.bytes
+            extra["outbox_bypassed_count"] = self.link.counters.get("outbox_bypassed", 0)
             du = self.store.disk_usage()
             # the daemon counts store errors and snapshots itself; keep the store's figures apart
             extra.update({("stored_" + k if k.startswith("snapshots_") else k): v for k, v in du.items()

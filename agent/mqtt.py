@@ -289,6 +289,7 @@ class MqttLink:
         self._stopped = threading.Event()
         self._inflight: dict[int, tuple[int, str]] = {}  # mid -> (seq, msg_id)
         self._direct_inflight: set[int] = set()
+        self._unacked: list[tuple[int, str]] = []  # acknowledged, but the delete failed (disk full)
         self._last_seq = 0
         self.counters = {"connects": 0, "disconnects": 0, "published": 0, "acked": 0,
                          "rejected": 0, "replies_dropped": 0, "requests_dropped": 0,
@@ -488,7 +489,26 @@ class MqttLink:
                 log.error("event=mqtt_publish_rejected id=%s reason=%r", msg_id, rc.getName())
             else:
                 self.counters["acked"] += 1
+            self._ack(seq, msg_id)
+
+    def _ack(self, seq: int, msg_id: str) -> None:
+        """Delete an acknowledged row; on a full disk (a DELETE needs journal space too)
+        keep it for a later try instead of ending this thread. A row whose delete never
+        succeeds is sent again after a restart: a duplicate by id, never a loss."""
+        try:
             self.outbox.ack(seq, msg_id)
+        except StoreError as exc:
+            self.last_error = str(exc)
+            if len(self._unacked) < 10_000:
+                self._unacked.append((seq, msg_id))
+            return
+        while self._unacked:  # a delete worked: the disk has room again
+            s, m = self._unacked[0]
+            try:
+                self.outbox.ack(s, m)
+            except StoreError:
+                return
+            self._unacked.pop(0)
 
     def _fallback_311(self) -> None:
         log.warning("event=mqtt_fallback protocol=3.1.1")

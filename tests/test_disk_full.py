@@ -114,3 +114,48 @@ def test_daemon_carries_on_through_a_full_disk(tmp_path, small_fs, mqtt_broker):
     assert ob.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
     assert ob.execute("SELECT COUNT(*) FROM outbox").fetchone()[0] == 0
     assert d.link.counters["outbox_bypassed"] > 0  # published straight while the disk was full
+
+
+def test_failed_delete_of_an_acknowledged_row_does_not_end_the_sender(tmp_path, mqtt_broker):
+    """Seen once in the daemon test above: on a full disk even the DELETE of an acknowledged
+    row fails (it needs journal space), and the exception ended the link's sender thread, so
+    nothing was published any more. The disk is made to refuse deletes here by an outbox whose
+    ``ack`` raises what the real one raised then (the full-disk timing is not reproducible)."""
+    from agent.errors import StoreError
+    from agent.mqtt import MqttLink, MqttSettings, event_payload
+    from agent.outbox import Kind, Outbox
+    from tests.broker import USERS
+
+    class FullDiskOnDelete(Outbox):
+        refuse = True
+
+        def ack(self, seq, msg_id=None):
+            if self.refuse:
+                raise StoreError(f"outbox {self.path}: cannot delete: database or disk is full")
+            return super().ack(seq, msg_id)
+
+    pw = tmp_path / "agent.pw"
+    pw.write_text(USERS["agent"] + "\n")
+    ob = FullDiskOnDelete(tmp_path / "o.sqlite")
+    link = MqttLink(MqttSettings(host="127.0.0.1", port=mqtt_broker.port, client_id="agent-df",
+                                 username="agent", password_file=str(pw), prefix="skv",
+                                 site="plant1", asset="p-201", reconnect_min_s=0.1), ob)
+    sub = Subscriber(mqtt_broker, f"{BASE}/events")
+    link.start()
+    try:
+        assert link.wait_connected(5)
+        for n in range(5):
+            link.send("events", event_payload("x", t_utc_s=0, state="alert", detail={"n": n}), kind=Kind.KEPT)
+        assert len(sub.collect(5, 5)) == 5
+        time.sleep(0.3)
+        assert link._thread.is_alive() and ob.stats().depth == 5  # kept, sender alive
+        ob.refuse = False  # space again: the next acknowledgement clears the backlog
+        link.send("events", event_payload("x", t_utc_s=0, state="alert", detail={"n": 5}), kind=Kind.KEPT)
+        assert len(sub.collect(1, 5)) == 1
+        deadline = time.monotonic() + 5
+        while ob.stats().depth and time.monotonic() < deadline:
+            time.sleep(0.05)
+        assert ob.stats().depth == 0
+    finally:
+        link.stop(2)
+        sub.close()
