@@ -184,13 +184,7 @@ class Acquisition(threading.Thread):
                 caps = src.read(timeout_s)
                 self._put(("captures", tuple(caps)))
             except EndOfSource:
-                # the end must arrive even when analysis is behind (else the loop waits forever)
-                while not self.stop_event.is_set():
-                    try:
-                        self.out.put(("end", None), timeout=min(0.5, BEAT_SLICE_S))
-                        break
-                    except queue.Full:
-                        self.beat_mono = self.mono()
+                self._put(("end", None))
                 break
             except SourceError as exc:
                 self.health.source_errors += 1
