@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import json
 import os
+import time
 
 import numpy as np
 
@@ -67,6 +68,7 @@ def outbox_writer(path: str, started, done, acked) -> None:
                 acked[j] = 1  # "ack in progress": the parent allows it either way
                 ob.ack(seq, f"m{j}")
                 acked[j] = 2
+        time.sleep(0.005)  # a busy agent's rate, so the delivery check stays a few hundred rows
 
 
 def _seq_of(ob, msg_id: str):

@@ -192,7 +192,7 @@ def test_outbox_survives_kills_and_delivers_everything(ctx, tmp_path, mqtt_broke
                     Outbox(path, max_bytes=1 << 30))
     link.start()
     want = {f"m{i}" for i in pending}
-    msgs = sub.collect_until(lambda ms: {json.loads(m.payload)["id"] for m in ms} >= want, 20)
+    msgs = sub.collect_until(lambda ms: {json.loads(m.payload)["id"] for m in ms} >= want, 60)
     got = [int(json.loads(m.payload)["id"][1:]) for m in msgs]
     link.stop(5)
     sub.close()
