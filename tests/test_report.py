@@ -78,7 +78,7 @@ def test_report_is_valid_and_self_contained(report):
     assert chk.stack == [] or chk.stack == ["html"] or not [t for t in chk.stack if t not in ("html", "body")]
     assert chk.external == [], "the report must not fetch anything"
     assert not re.search(r"<(script|link|img)[^>]+(src|href)=", text)
-    for section in ("summary", "findings", "spectrum", "waveform", "peaks", "facts"):
+    for section in ("summary", "findings", "spectrum", "orders", "envelope", "waveform", "peaks", "facts"):
         assert section in chk.ids
     assert "lockout/tagout" in text
 
