@@ -572,6 +572,10 @@ class Daemon:
         caps: tuple[Capture, ...] = payload
         if self.controls is not None:
             mode = self.controls.current_mode()
+            if mode == "learn":  # "learn" = forget the baseline and learn afresh, then monitor as usual
+                self._apply_relearn()
+                self.controls.mode, self.controls.mode_until_utc_s = "monitor", None
+                mode = "monitor"
             if mode != self.ms.mode:
                 self.ms = dataclasses.replace(self.ms, mode=mode)
                 log_event("mode", mode=mode)
