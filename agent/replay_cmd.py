@@ -280,6 +280,7 @@ def add_parser(sub) -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="one JSON line per capture, then a JSON summary")
     p.add_argument("--fs", type=float, help="sample rate, for files that do not say")
     p.add_argument("--units", choices=("g", "m/s2", "mm/s", "V"), help="units, for files that do not say")
+    p.add_argument("--channel", help="variable/column to read, for files with several (e.g. X105_DE_time)")
     p.add_argument("--reports", metavar="DIR", help="write an HTML report for each state change and a final one")
     p.set_defaults(func=run)
     return p
@@ -305,7 +306,7 @@ def run(args) -> int:
     if args.speed is not None and not args.speed > 0:
         raise InputError(f"--speed must be > 0, got {args.speed}")
     cfg, cfg_name = _config_for(args)
-    src = ReplaySource(args.paths, speed=args.speed, fs_hz=args.fs, units=args.units)
+    src = ReplaySource(args.paths, speed=args.speed, fs_hz=args.fs, units=args.units, channel=args.channel)
     try:
         src.open()
     except SourceUnavailable as exc:
