@@ -18,6 +18,8 @@ import time
 
 import pytest
 
+pytest.importorskip("paho.mqtt.client", reason="paho-mqtt is a runtime dependency; run the suite in the project .venv (tests/setup-machine.sh)")
+
 from agent.mqtt import MqttLink, MqttSettings, event_payload
 from agent.outbox import Kind, Outbox
 from tests import broker as B

@@ -21,6 +21,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+
+pytest.importorskip("paho.mqtt.client", reason="paho-mqtt is a runtime dependency; run the suite in the project .venv (tests/setup-machine.sh)")
 from hypothesis import HealthCheck, given, settings, strategies as st
 from scipy.io import savemat, wavfile
 

@@ -12,6 +12,8 @@ from pathlib import Path
 
 import pytest
 
+pytest.importorskip("paho.mqtt.client", reason="paho-mqtt is a runtime dependency; run the suite in the project .venv (tests/setup-machine.sh)")
+
 from agent.errors import PublishError
 from agent.model import Finding, MachineState, Severity
 from agent.mqtt import (MqttLink, MqttSettings, Topics, encode, event_payload,

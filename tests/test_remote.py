@@ -12,8 +12,10 @@ import time
 import types
 
 import numpy as np
-import paho.mqtt.client as paho
 import pytest
+
+pytest.importorskip("paho.mqtt.client", reason="paho-mqtt is a runtime dependency; run the suite in the project .venv (tests/setup-machine.sh)")
+import paho.mqtt.client as paho  # noqa: E402
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 
