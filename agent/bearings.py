@@ -58,7 +58,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 from scipy import ndimage
 
-from agent.envelope import EnvelopeSpectrum, envelope_spectrum
+from agent.envelope import EnvelopeSpectrum, envelope_from_spectrum, envelope_spectrum, signal_spectrum
 from agent.kinematics import BearingSpec, bearing_orders, train_from_config
 from agent.model import Finding, Severity
 from agent.spectra import Spectrum, SpectrumPlan, accel_spectrum, noise_floor, velocity_spectrum
@@ -140,30 +140,54 @@ class DefectScore:
 # helpers on one SES
 
 
-def _height_db(ses: EnvelopeSpectrum, width_hz: float, smooth_lines: int = 1) -> np.ndarray:
+def _height_db(ses: EnvelopeSpectrum, width_hz: float, smooth_lines: int = 1, n_lines: int | None = None) -> np.ndarray:
     """Height of every SES line above a running-median floor, dB (20·log10 of amplitude).
 
     ``smooth_lines`` > 1 first averages the power over that many lines, which
     gathers a tone smeared by random slip (rolling elements) into one hump.
+    ``n_lines`` returns the first ``n_lines`` heights only, computed from the
+    lines they depend on (the smoothing, and the block medians on either
+    side of each line): the same values as those of the whole spectrum.
     """
     a = np.asarray(ses.amplitude)
-    if smooth_lines > 1:
-        a = np.sqrt(np.maximum(ndimage.uniform_filter1d(a * a, smooth_lines, mode="nearest"), 0.0))
     df = ses.bin_width_hz
     w = max(15, int(round(width_hz / df)))
-    tiny = max(float(a.max()) * 1e-12, 1e-300)
-    la = np.log10(np.maximum(a, tiny))
-    # block medians every w/2 lines, interpolated: the median floor at a fraction of the cost
-    step = max(1, w // 2)
+    step = max(1, w // 2)  # block medians every w/2 lines, interpolated: the median floor at a fraction of the cost
     half = w // 2
-    n = la.size
-    padded = np.pad(la, half, mode="edge")
-    centres = np.arange(0, n, step)
-    win = np.lib.stride_tricks.sliding_window_view(padded, 2 * half + 1)[::step]  # rows at the centres, a view
+    n = a.size if n_lines is None else min(a.size, int(n_lines))
+    # heights of lines < n read the log amplitudes of lines < n + step + half (the block median past them)
+    need = n + step + half
+    cut = need + smooth_lines // 2 + 1  # ... and the smoothing reads half its width further
+    if cut < a.size:
+        part = a[:cut]
+        if smooth_lines > 1:
+            part = np.sqrt(np.maximum(ndimage.uniform_filter1d(part * part, smooth_lines, mode="nearest"), 0.0))
+        part = part[:need]
+        # the whole spectrum's clip level (below) is at most 2e-12 × its largest line (smoothing does not
+        # raise the largest power); above that no line is clipped and the logarithms are the same
+        if float(part.min()) > max(2e-12 * float(a.max()), 1e-300):
+            return _heights_above_floor(np.log10(part), n, step, half)
+    if smooth_lines > 1:
+        a = np.sqrt(np.maximum(ndimage.uniform_filter1d(a * a, smooth_lines, mode="nearest"), 0.0))
+    tiny = max(float(a.max()) * 1e-12, 1e-300)
+    return _heights_above_floor(np.log10(np.maximum(a, tiny)), n, step, half)
+
+
+def _heights_above_floor(la: np.ndarray, n: int, step: int, half: int) -> np.ndarray:
+    """20·(``la`` − floor) dB for the first ``n`` lines; floor = medians of 2·``half`` + 1 lines every ``step``.
+
+    ``la`` is log10 of the amplitude; the medians, taken at every ``step``-th
+    line (edge lines repeated beyond the ends), are interpolated linearly.
+    """
+    padded = np.concatenate((np.full(half, la[0]), la, np.full(half, la[-1])))  # edge lines repeated
+    centres = np.arange(0, la.size, step)
+    # rows of 2·half + 1 lines about each centre, a strided view of ``padded``
+    win = np.lib.stride_tricks.as_strided(padded, (centres.size, 2 * half + 1), (step * padded.strides[0],
+                                                                                   padded.strides[0]), writeable=False)
     # the middle of 2·half + 1 sorted values is the median (np.partition: same value, ~5× quicker than np.median)
     medians = np.partition(win, half, axis=1)[:, half]
     floor = np.interp(np.arange(n), centres, medians)
-    h = 20.0 * (la - floor)
+    h = 20.0 * (la[:n] - floor)
     h[0] = 0.0
     return h
 
@@ -198,18 +222,35 @@ def _line_near(h: np.ndarray, df: float, f_hz: float, half_lines: int) -> tuple[
     return i, float(h[i])
 
 
-def _family(
-    h: np.ndarray,
-    df: float,
-    f0_hz: float,
-    tol: float,
-    n_harm: int,
-    fmax_hz: float,
-    thr: float,
-) -> tuple[float, list[tuple[int, float, float]]]:
-    """Best fundamental within ±tol of ``f0_hz`` by a harmonic comb; its harmonics.
+def _lines_near(h: np.ndarray, df: float, f_hz: np.ndarray, half_lines: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_line_near` for several frequencies at once: indices (−1 where no line) and heights."""
+    k = np.rint(f_hz / df).astype(int)
+    lo = np.maximum(1, k - half_lines)
+    hi = np.minimum(h.size, k + half_lines + 1)
+    cols = lo[:, None] + np.arange(max(1, int((hi - lo).max())))[None, :]
+    vals = np.where(cols < hi[:, None], h[np.minimum(cols, h.size - 1)], -np.inf)  # −inf off the window
+    j = np.argmax(vals, axis=1)  # the first highest line of each window, as np.argmax on the window
+    return np.where(lo < hi, lo + j, -1), vals[np.arange(k.size), j]
 
-    Returns (fundamental_hz, [(k, freq_hz, height_db), ...]).
+
+@dataclass(frozen=True, slots=True)
+class _Comb:
+    """The harmonic comb of one defect on one SES's lines (see :func:`_comb`, :func:`_family`)."""
+
+    f0_hz: float  # kinematic fundamental
+    cand_hz: np.ndarray  # candidate fundamentals within ±tol, four per line
+    ks: np.ndarray  # harmonic numbers searched (those below the view's top frequency)
+    idx: np.ndarray  # [candidate, harmonic]: the line nearest k × candidate, within 1 … n_lines − 2
+    half_lines: np.ndarray  # per harmonic: half-width, lines, of the window its line is taken from
+
+
+def _comb(df: float, f0_hz: float, tol: float, n_harm: int, fmax_hz: float, n_lines: int) -> _Comb:
+    """Candidate fundamentals within ±``tol`` of ``f0_hz`` and where their harmonics fall (``df`` Hz lines).
+
+    Harmonics are searched up to ``n_harm``, below ``fmax_hz`` at the top
+    of the slip band; ``n_lines`` is the length of the height spectra the
+    comb is laid on. It depends on the view and the defect only, so one comb
+    serves every search of that defect on that view.
     """
     lo, hi = f0_hz * (1 - tol), f0_hz * (1 + tol)
     cand = np.arange(int(np.floor(lo / df)), int(np.ceil(hi / df)) + 1) * df
@@ -217,20 +258,28 @@ def _family(
     cand = np.linspace(cand[0], cand[-1], 4 * cand.size)
     ks = np.arange(1, n_harm + 1)
     ks = ks[ks * f0_hz * (1 + tol) < fmax_hz]
-    if ks.size == 0 or cand.size == 0:
-        return f0_hz, []
-    idx = np.rint(np.outer(cand, ks) / df).astype(int)
-    idx = np.clip(idx, 1, h.size - 2)
+    idx = np.rint(cand[:, None] * ks[None, :] / df).astype(int)
+    idx = np.minimum(np.maximum(idx, 1), n_lines - 2)
+    half = 1 + (ks * (cand[1] - cand[0]) / df + 0.5).astype(int)  # the grid's spread at harmonic k
+    return _Comb(f0_hz, cand, ks, idx, half)
+
+
+def _family(h: np.ndarray, df: float, comb: _Comb, thr: float) -> tuple[float, list[tuple[int, float, float]]]:
+    """Best fundamental of ``comb`` in the height spectrum ``h`` (dB) by a harmonic comb; its harmonics.
+
+    Returns (fundamental_hz, [(k, freq_hz, height_db), ...]).
+    """
+    ks, idx = comb.ks, comb.idx
+    if ks.size == 0:
+        return comb.f0_hz, []
     hh = np.maximum(np.maximum(h[idx - 1], h[idx]), h[idx + 1])
-    comb = np.minimum(np.maximum(hh - thr, 0.0), 15.0)
+    credit = np.minimum(np.maximum(hh - thr, 0.0), 15.0)
     # the fundamental must carry weight of its own: weight 1/k favours low harmonics
-    total = (comb / ks[None, :]).sum(axis=1) + 1e-6 * hh[:, 0]
-    best = float(cand[int(np.argmax(total))])
-    out = []
-    for k in ks:
-        i, hk = _line_near(h, df, k * best, 1 + int(k * (cand[1] - cand[0]) / df + 0.5))
-        out.append((int(k), i * df, hk))
-    return best, out
+    total = (credit / ks[None, :]).sum(axis=1) + 1e-6 * hh[:, 0]
+    best = float(comb.cand_hz[int(np.argmax(total))])
+    # each harmonic's highest line within the comb's spread at that order
+    lines, heights = _lines_near(h, df, ks * best, comb.half_lines)
+    return best, [(int(k), int(i) * df, float(hk)) for k, i, hk in zip(ks, lines, heights)]
 
 
 def _sidebands(
@@ -257,27 +306,24 @@ def _sidebands(
 def _score_defect(
     name: str,
     defect: str,
-    order: float,
-    ses: EnvelopeSpectrum,
+    comb: _Comb,
+    df: float,
     h: np.ndarray,
     thr: float,
     speed_hz: float,
     ftf_order: float,
-    st: BearingSettings,
     view: str,
     sigma_scale: float = 1.0,
 ) -> DefectScore:
-    """Score one defect family in one height spectrum ``h`` (lines count above ``thr`` dB).
+    """Score one defect family (its ``comb``) in one height spectrum ``h`` (lines ``df`` Hz apart; count above ``thr`` dB).
 
     Credits are dB above ``thr`` times ``sigma_scale``: a smoothed spectrum
     fluctuates √(M/1.5) times less than single lines, so a dB of it counts
     that many times more (same credit for the same number of standard
     deviations).
     """
-    df = ses.bin_width_hz
-    fmax = min(float(ses.f_hz[-1]), 0.8 * (ses.band_hz[1] - ses.band_hz[0]))
     scale = sigma_scale
-    f0, harms = _family(h, df, order * speed_hz, st.slip_tol, st.n_harmonics, fmax, thr)
+    f0, harms = _family(h, df, comb, thr)
     score = 0.0
     rank = 0.0
     evidence = []
@@ -333,9 +379,12 @@ def envelope_views(
     fmax = FMAX_FRACTION * fs_hz
     fmin = settings.fmin_hz if settings.fmin_hz is not None else min(4.0 * max_defect_hz, 0.25 * fmax)
     min_bw = min(4.0 * max_defect_hz, 0.5 * (fmax - fmin))
-    full = envelope_spectrum(accel, fs_hz, (fmin, fmax))
+    spec = signal_spectrum(accel, fs_hz, whiten=True)  # one pre-whitened spectrum for both views
+    n = np.asarray(accel).size
+    full = envelope_from_spectrum(spec, n, fs_hz, (fmin, fmax), prewhitened=True)
     try:
-        kg = envelope_spectrum(accel, fs_hz, fmin_hz=fmin, min_bandwidth_hz=min_bw, fmax_hz=fmax)
+        kg = envelope_from_spectrum(spec, n, fs_hz, prewhitened=True, fmin_hz=fmin, min_bandwidth_hz=min_bw,
+                                    fmax_hz=fmax)
     except ValueError:
         return (full,)  # capture too short for any kurtogram band of that width: the full band only
     return (kg, full)
@@ -366,29 +415,33 @@ def score_bearing(
     """
     o = spec.orders
     defects = {"outer": o.bpfo, "inner": o.bpfi, "ball": 2 * o.bsf, "ball1": o.bsf, "cage": o.ftf}
+    top_order = max(defects.values())
     prepared = []
     for ses in views:
         df = ses.bin_width_hz
         width = max(0.5 * speed_hz, 10 * df)
-        sync = _sync_mask(ses.f_hz, speed_hz, settings, df)
+        n = _lines_searched(ses, top_order, speed_hz, settings)  # the search reads no line above these
+        sync = _sync_mask(ses.f_hz[:n], speed_hz, settings, df)
         view = f"{ses.band_source} {ses.band_hz[0]:.0f}-{ses.band_hz[1]:.0f} Hz"
-        prepared.append((ses, sync, view, width))
+        prepared.append((ses, sync, view, width, n))
 
     cache: dict = {} if heights_cache is None else heights_cache
 
     def heights(i: int, m: int) -> np.ndarray:
-        ses, _, _, width = prepared[i]
+        ses, _, _, width, n = prepared[i]
         w = width if m == 1 else min(max(width, 10 * m * ses.bin_width_hz), 2 * speed_hz)
         key = (id(ses), w, m)
-        if key not in cache:
-            h = _height_db(ses, w, smooth_lines=m)
+        if key not in cache or cache[key].size < n:
+            h = _height_db(ses, w, smooth_lines=m, n_lines=n)
             h.setflags(write=False)  # shared: never changed in place
             cache[key] = h
-        return cache[key]
+        return cache[key][:n]  # the first n heights are the same however many were computed
+
+    combs: dict[tuple[int, str], _Comb] = {}  # per view and defect, for every round
 
     def run(names, masks):
         best: dict[str, DefectScore] = {}
-        for i, ((ses, sync, view, width), mask) in enumerate(zip(prepared, masks)):
+        for i, ((ses, sync, view, width, n), mask) in enumerate(zip(prepared, masks)):
             df = ses.bin_width_hz
             sharp = np.where(mask, 0.0, heights(i, 1))
             for defect in names:
@@ -399,10 +452,11 @@ def score_bearing(
                     smooth = np.where(mask, 0.0, heights(i, m))
                     m_eff = math.sqrt(m / 1.5)
                     cands.append((smooth, 10 * math.log10(1 + 8.0 / m_eff), m_eff))
+                if (i, defect) not in combs:
+                    fmax = min(float(ses.f_hz[-1]), 0.8 * (ses.band_hz[1] - ses.band_hz[0]))
+                    combs[i, defect] = _comb(df, order * speed_hz, settings.slip_tol, settings.n_harmonics, fmax, n)
                 for h, thr, sig in cands:
-                    sc = _score_defect(
-                        spec.name, defect, order, ses, h, thr, speed_hz, o.ftf, settings, view, sig
-                    )
+                    sc = _score_defect(spec.name, defect, combs[i, defect], df, h, thr, speed_hz, o.ftf, view, sig)
                     if sc.defect not in best or sc.score > best[sc.defect].score:
                         best[sc.defect] = sc
         return best
@@ -421,9 +475,23 @@ def score_bearing(
         if win.confidence < settings.report_confidence:
             out.update({d: sc for d, sc in best.items() if d not in out})
             break
-        for (ses, _, _, _), mask in zip(prepared, masks):
-            mask |= _family_mask(ses.f_hz, win, speed_hz, o.ftf * speed_hz)
+        for (ses, _, _, _, n), mask in zip(prepared, masks):
+            mask |= _family_mask(ses.f_hz, win, speed_hz, o.ftf * speed_hz)[:n]
     return out
+
+
+def _lines_searched(ses: EnvelopeSpectrum, top_order: float, speed_hz: float, settings: BearingSettings) -> int:
+    """How many lines of ``ses`` (from 0 Hz) the family search of one bearing can read.
+
+    The comb (:func:`_family`) reads up to ``n_harmonics`` × the highest
+    fundamental searched, ``top_order`` × ``speed_hz`` × (1 + ``slip_tol``),
+    plus about a line per harmonic order (its grid) and a few (the window
+    around each harmonic); :func:`_sidebands` reads ±1X (≥ FTF) about the
+    first three harmonics within 0.5 %. The bound keeps 1 % and eight lines
+    spare; with fewer lines in the view, all of them.
+    """
+    f_top_hz = settings.n_harmonics * top_order * speed_hz * (1 + settings.slip_tol) + speed_hz
+    return min(ses.f_hz.size, int(1.01 * f_top_hz / ses.bin_width_hz) + 2 * settings.n_harmonics + 8)
 
 
 def _family_mask(f_hz: np.ndarray, win: DefectScore, speed_hz: float, ftf_hz: float) -> np.ndarray:
@@ -438,32 +506,30 @@ def _family_mask(f_hz: np.ndarray, win: DefectScore, speed_hz: float, ftf_hz: fl
     c = np.concatenate(centres)
     c = c[(c > 0) & (c < f_hz[-1])]
     half = np.maximum(2.5 * df, 0.003 * c)
-    mask = np.zeros(f_hz.size, dtype=bool)
     lo = np.clip(np.floor((c - half) / df).astype(int), 0, f_hz.size)
     hi = np.clip(np.ceil((c + half) / df).astype(int) + 1, 0, f_hz.size)
-    for a, b in zip(lo, hi):
-        mask[a:b] = True
-    return mask
+    # lines [lo, hi) of every centre: +1 at each start, −1 at each end; covered where the running sum is > 0
+    edges = np.zeros(f_hz.size + 1, dtype=np.int64)
+    np.add.at(edges, lo, 1)
+    np.add.at(edges, hi, -1)
+    return np.cumsum(edges[:-1]) > 0
 
 
 def _spectrum_stage(
     score: DefectScore,
-    vel: Spectrum | None,
+    staging: tuple[Spectrum, np.ndarray] | None,
     speed_hz: float,
     ftf_hz: float,
     settings: BearingSettings,
     floor_rise_db: float | None,
 ) -> tuple[int, list[dict]]:
-    """Stage 1-4 (common practice) and the velocity-spectrum evidence."""
+    """Stage 1-4 (common practice) and the velocity-spectrum evidence (``staging``: :func:`_staging_lines`)."""
     if floor_rise_db is not None and floor_rise_db >= 6.0:
         return 4, []
-    if vel is None:
+    if staging is None:
         return 1, []
-    logp = 10 * np.log10(np.maximum(vel.power, 1e-300))
-    h = logp - 10 * np.log10(np.maximum(noise_floor(vel), 1e-300))
+    vel, h = staging
     df = vel.bin_width_hz
-    # shaft harmonics are not bearing tones, even where they fall on one
-    h = np.where(_sync_mask(vel.f_hz, speed_hz, settings, df), 0.0, h)
     f0 = score.fundamental_hz
     found, ev = 0, []
     for k in range(1, 4):
@@ -485,6 +551,22 @@ def _spectrum_stage(
     if found >= 2 and (sb or not spacing):
         return 3, ev
     return 2, ev
+
+
+def _staging_lines(
+    accel_ms2: np.ndarray, fs_hz: float, speed_hz: float, settings: BearingSettings
+) -> tuple[Spectrum, np.ndarray] | None:
+    """The velocity spectrum (up to 16 384 lines) a finding's stage is judged on, and its lines' height
+    above the noise floor, dB (shaft and supply harmonics set to 0). None below 256 samples.
+    """
+    if accel_ms2.size < 256:
+        return None
+    plan = SpectrumPlan.build(fs_hz, accel_ms2.size, lines=min(1 << 14, accel_ms2.size // 4))
+    vel = velocity_spectrum(accel_spectrum(accel_ms2, plan), f_low_hz=max(0.3 * speed_hz, plan.bin_width_hz))
+    logp = 10 * np.log10(np.maximum(vel.power, 1e-300))
+    h = logp - 10 * np.log10(np.maximum(noise_floor(vel), 1e-300))
+    # shaft harmonics are not bearing tones, even where they fall on one
+    return vel, np.where(_sync_mask(vel.f_hz, speed_hz, settings, vel.bin_width_hz), 0.0, h)
 
 
 def diagnose_bearings(
@@ -515,10 +597,7 @@ def diagnose_bearings(
         return unassigned_tones(views, speed_hz, settings)
     max_defect = max(max(b.orders.bpfi, b.orders.bpfo, 2 * b.orders.bsf) for b in bearings) * speed_hz
     views = envelope_views(x, fs_hz, max_defect, settings)
-    vel = None
-    if x.size >= 256:
-        plan = SpectrumPlan.build(fs_hz, x.size, lines=min(1 << 14, x.size // 4))
-        vel = velocity_spectrum(accel_spectrum(x, plan), f_low_hz=max(0.3 * speed_hz, plan.bin_width_hz))
+    staging = None  # the velocity spectrum's lines for staging, made when a finding first needs them
     findings = []
     heights: dict = {}  # line heights per view, shared by the bearings (the views live until we return)
     for b in bearings:
@@ -526,7 +605,9 @@ def diagnose_bearings(
         top = next(iter(scores.values()))  # the family that explains most
         if top.confidence < settings.report_confidence:
             continue
-        stage, vel_ev = _spectrum_stage(top, vel, speed_hz, b.orders.ftf * speed_hz, settings, floor_rise_db)
+        if staging is None:
+            staging = _staging_lines(x, fs_hz, speed_hz, settings)
+        stage, vel_ev = _spectrum_stage(top, staging, speed_hz, b.orders.ftf * speed_hz, settings, floor_rise_db)
         others = {d: round(s.confidence, 3) for d, s in scores.items()}
         called = top.confidence >= settings.call_confidence
         findings.append(

@@ -35,6 +35,7 @@ frequencies then read as orders).
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 from scipy import fft as sfft
@@ -119,6 +120,20 @@ def prewhiten(x: np.ndarray) -> np.ndarray:
     return sfft.irfft(_whitened_spectrum(arr), n=arr.size)
 
 
+def signal_spectrum(x: np.ndarray, fs_hz: float, *, whiten: bool = True) -> np.ndarray:
+    """One-sided spectrum of ``x`` (mean removed) that the envelope is taken from.
+
+    With ``whiten`` it is cepstrum pre-whitened, ``X/|X|`` with DC set to
+    zero (Borghesani et al. 2013, eq. 5). Compute it once and pass it to
+    :func:`envelope_from_spectrum` for several bands of the same capture.
+    """
+    return _spectrum_of(_check_signal(x, fs_hz), whiten)
+
+
+def _spectrum_of(arr: np.ndarray, whiten: bool) -> np.ndarray:
+    return _whitened_spectrum(arr) if whiten else sfft.rfft(arr - arr.mean())
+
+
 def _whitened_spectrum(arr: np.ndarray) -> np.ndarray:
     """One-sided spectrum X/|X| (DC set to zero)."""
     spec = sfft.rfft(arr - arr.mean())
@@ -174,16 +189,19 @@ def _kurtogram(spec, n, fs_hz, fmin_hz, fmax_hz, min_bandwidth_hz, max_bandwidth
         start = np.rint((fc - bw / 2) / df).astype(int)
         ok_idx = start + lines <= spec.size
         fc, start = fc[ok_idx], start[ok_idx]
-        # ideal band-pass + critical decimation in one inverse FFT per band (batched)
-        c = sfft.ifft(spec[start[:, None] + np.arange(lines)[None, :]], axis=1, workers=-1)
-        p2 = c.real**2 + c.imag**2
-        m2 = p2.mean(axis=1)
-        m4 = (p2 * p2).mean(axis=1)
-        sk = np.where(m2 > 0, m4 / np.maximum(m2, 1e-30) ** 2 - 2.0, 0.0).astype(np.float64)
-        sk = np.maximum(sk, 0.0)
         lo, hi = fc - bw / 2, fc + bw / 2
         ok = (lo >= fmin_hz) & (hi <= fmax)
-        sk = np.where(ok, sk, 0.0)
+        # bands outside [fmin, fmax] keep kurtosis 0 and are not transformed
+        sk = np.zeros(fc.size)
+        if ok.any():
+            # ideal band-pass + critical decimation in one inverse FFT per band (batched; one
+            # thread: the box runs other work, and the CPU time of every thread counts)
+            c = sfft.ifft(spec[start[ok, None] + np.arange(lines)[None, :]], axis=1)
+            p2 = c.real**2 + c.imag**2
+            m2 = p2.mean(axis=1)
+            m4 = (p2 * p2).mean(axis=1)
+            sk_ok = np.where(m2 > 0, m4 / np.maximum(m2, 1e-30) ** 2 - 2.0, 0.0).astype(np.float64)
+            sk[ok] = np.maximum(sk_ok, 0.0)
         nws.append(nw)
         bws.append(bw)
         fcs.append(fc)
@@ -254,26 +272,50 @@ def envelope_spectrum(
     ``fmax_env_hz`` trims the returned spectrum.
     """
     arr = _check_signal(x, fs_hz)
-    n = arr.size
+    return envelope_from_spectrum(_spectrum_of(arr, whiten), arr.size, fs_hz, band_hz, prewhitened=whiten, select_band=select_band,
+                                  fmin_hz=fmin_hz, fmax_hz=fmax_hz, min_bandwidth_hz=min_bandwidth_hz,
+                                  fmax_env_hz=fmax_env_hz)
+
+
+def envelope_from_spectrum(
+    spec: np.ndarray,
+    n_samples: int,
+    fs_hz: float,
+    band_hz: tuple[float, float] | None = None,
+    *,
+    prewhitened: bool,
+    select_band: bool = True,
+    fmin_hz: float = 0.0,
+    fmax_hz: float | None = None,
+    min_bandwidth_hz: float | None = None,
+    fmax_env_hz: float | None = None,
+) -> EnvelopeSpectrum:
+    """:func:`envelope_spectrum` from the capture's one-sided spectrum (:func:`signal_spectrum`).
+
+    ``spec`` is the rfft of ``n_samples`` samples at ``fs_hz`` Hz,
+    pre-whitened or not as ``prewhitened`` says; the other arguments are
+    :func:`envelope_spectrum`'s. Several bands of one capture share the one
+    spectrum.
+    """
+    n = int(n_samples)
     nyq = fs_hz / 2.0
-    spec = _whitened_spectrum(arr) if whiten else sfft.rfft(arr - arr.mean())
     if band_hz is not None:
         lo, hi = float(band_hz[0]), float(band_hz[1])
         if not 0 <= lo < hi <= nyq:
             raise ValueError(f"band_hz must satisfy 0 <= low < high <= {nyq:g}, got {band_hz}")
-        band, source, sk = (lo, hi), "config", None
+        band, source = (lo, hi), "config"
     elif select_band:
         kg = _kurtogram(spec, n, fs_hz, fmin_hz, fmax_hz, min_bandwidth_hz, None)
-        band, source, sk = kg.band_hz, "kurtogram", None
+        band, source = kg.band_hz, "kurtogram"
     else:
-        band, source, sk = (float(fmin_hz), nyq if fmax_hz is None else float(fmax_hz)), "full", None
+        band, source = (float(fmin_hz), nyq if fmax_hz is None else float(fmax_hz)), "full"
     c = _band_envelope(spec, n, fs_hz, band)
     env2 = c.real**2 + c.imag**2
     m2 = float(env2.mean())
     sk = float(max(0.0, (env2 * env2).mean() / m2**2 - 2.0)) if m2 > 0 else 0.0
     m = env2.size
     fs_env = m * fs_hz / n
-    win = np.hanning(m + 1)[:-1]
+    win = _hann(m)
     ses = np.abs(sfft.rfft((env2 - m2) * win)) * (2.0 / win.sum())
     f = np.arange(ses.size) * (fs_env / m)
     if fmax_env_hz is not None:
@@ -285,7 +327,15 @@ def envelope_spectrum(
         band_hz=(float(band[0]), float(band[1])),
         kurtosis=sk,
         band_source=source,
-        prewhitened=bool(whiten),
+        prewhitened=bool(prewhitened),
         fs_hz=float(fs_hz),
-        n_samples=int(n),
+        n_samples=n,
     )
+
+
+@lru_cache(maxsize=8)
+def _hann(m: int) -> np.ndarray:
+    """Periodic Hann window of ``m`` points (``np.hanning(m + 1)[:-1]``), shared read-only."""
+    win = np.hanning(m + 1)[:-1]
+    win.setflags(write=False)
+    return win
