@@ -196,10 +196,11 @@ def _kurtogram(spec, n, fs_hz, fmin_hz, fmax_hz, min_bandwidth_hz, max_bandwidth
         if ok.any():
             # ideal band-pass + critical decimation in one inverse FFT per band (batched; one
             # thread: the box runs other work, and the CPU time of every thread counts)
-            c = sfft.ifft(spec[start[ok, None] + np.arange(lines)[None, :]], axis=1)
-            p2 = c.real**2 + c.imag**2
+            c = sfft.ifft(spec[start[ok, None] + np.arange(lines)[None, :]], axis=1, overwrite_x=True)
+            p2 = np.square(c.real)
+            p2 += np.square(c.imag)  # |c|²
             m2 = p2.mean(axis=1)
-            m4 = (p2 * p2).mean(axis=1)
+            m4 = np.square(p2, out=p2).mean(axis=1)  # <|c|⁴>
             sk_ok = np.where(m2 > 0, m4 / np.maximum(m2, 1e-30) ** 2 - 2.0, 0.0).astype(np.float64)
             sk[ok] = np.maximum(sk_ok, 0.0)
         nws.append(nw)
@@ -239,7 +240,9 @@ def _band_envelope(spec: np.ndarray, n: int, fs_hz: float, band_hz: tuple[float,
     m = sfft.next_fast_len(2 * nb + 2)
     base = np.zeros(m, dtype=np.complex128)
     base[:nb] = spec[k_lo : k_hi + 1]
-    return sfft.ifft(base) * (m / n) * 2.0
+    c = sfft.ifft(base, overwrite_x=True)
+    c *= (m / n) * 2.0  # in place: the same values as (c · m/n) · 2 (a factor 2 rounds the same)
+    return c
 
 
 def band_kurtosis(x: np.ndarray, fs_hz: float, band_hz: tuple[float, float]) -> float:
@@ -310,14 +313,20 @@ def envelope_from_spectrum(
     else:
         band, source = (float(fmin_hz), nyq if fmax_hz is None else float(fmax_hz)), "full"
     c = _band_envelope(spec, n, fs_hz, band)
-    env2 = c.real**2 + c.imag**2
+    env2 = np.square(c.real)
+    env2 += np.square(c.imag)  # |c|², one temporary fewer than c.real**2 + c.imag**2 (same values)
+    del c
     m2 = float(env2.mean())
     sk = float(max(0.0, (env2 * env2).mean() / m2**2 - 2.0)) if m2 > 0 else 0.0
     m = env2.size
     fs_env = m * fs_hz / n
     win = _hann(m)
-    ses = np.abs(sfft.rfft((env2 - m2) * win)) * (2.0 / win.sum())
-    f = np.arange(ses.size) * (fs_env / m)
+    env2 -= m2  # in place from here: env2 is not needed again
+    env2 *= win
+    ses = np.abs(sfft.rfft(env2, overwrite_x=True))
+    ses *= 2.0 / win.sum()
+    f = np.arange(ses.size, dtype=np.float64)
+    f *= fs_env / m
     if fmax_env_hz is not None:
         keep = f <= fmax_env_hz
         f, ses = f[keep], ses[keep]
