@@ -222,64 +222,96 @@ def _line_near(h: np.ndarray, df: float, f_hz: float, half_lines: int) -> tuple[
     return i, float(h[i])
 
 
-def _lines_near(h: np.ndarray, df: float, f_hz: np.ndarray, half_lines: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """:func:`_line_near` for several frequencies at once: indices (−1 where no line) and heights."""
+@dataclass(frozen=True, slots=True)
+class _Combs:
+    """Harmonic combs of several defect fundamentals on one SES's lines (:func:`_combs`, :func:`_families`).
+
+    Row ``d`` is one fundamental. Rows with fewer candidates repeat their
+    last one, which never wins over the original (the first best counts).
+    """
+
+    f0_hz: np.ndarray  # (D,) kinematic fundamentals, Hz
+    cand_hz: np.ndarray  # (D, C) candidate fundamentals within ±tol, four per line
+    ks: np.ndarray  # (K,) harmonic numbers 1 … n_harmonics
+    n_ks: np.ndarray  # (D,) harmonics searched: those below the view's top frequency, ks[:n_ks]
+    idx: np.ndarray  # (D, C, K) the line nearest k × candidate, within 1 … n_lines − 2
+    half_lines: np.ndarray  # (D, K) half-width, lines, of the window each harmonic's line is taken from
+
+
+def _combs(df: float, f0_hz: list[float], tol: float, n_harm: int, fmax_hz: float, n_lines: int) -> _Combs:
+    """Candidate fundamentals within ±``tol`` of each of ``f0_hz`` and where their harmonics fall.
+
+    Lines are ``df`` Hz apart; harmonics are searched up to ``n_harm``, below
+    ``fmax_hz`` at the top of the slip band; ``n_lines`` is the length of the
+    height spectra the combs are laid on. They depend on the view and the
+    defects only, so they serve every search of those defects on that view.
+    """
+    ks = np.arange(1, n_harm + 1)
+    grids = []
+    for f0 in f0_hz:
+        lo, hi = f0 * (1 - tol), f0 * (1 + tol)
+        lines = np.arange(math.floor(lo / df), math.ceil(hi / df) + 1) * df
+        grids.append(np.linspace(lines[0], lines[-1], 4 * lines.size))  # finer than the lines: harmonics land right
+    cand = np.empty((len(grids), max(g.size for g in grids)))
+    for row, g in zip(cand, grids):
+        row[: g.size], row[g.size :] = g, g[-1]
+    n_ks = np.array([int(np.count_nonzero(ks * f0 * (1 + tol) < fmax_hz)) for f0 in f0_hz])
+    idx = np.rint(cand[:, :, None] * ks[None, None, :] / df).astype(int)
+    idx = np.minimum(np.maximum(idx, 1), n_lines - 2)
+    half = 1 + (ks[None, :] * (cand[:, 1:2] - cand[:, :1]) / df + 0.5).astype(int)  # the grid's spread at k
+    return _Combs(np.asarray(f0_hz, dtype=np.float64), cand, ks, n_ks, idx, half)
+
+
+def _families(
+    h: np.ndarray, df: float, combs: _Combs, rows: list[tuple[int, int, float]]
+) -> list[tuple[float, list[tuple[int, float, float]]]]:
+    """Best fundamental of each comb searched, by its harmonics, and those harmonics.
+
+    ``h`` holds height spectra (dB), one a row, lines ``df`` Hz apart; each
+    of ``rows`` is (row of ``h``, row of ``combs``, threshold dB). A
+    candidate's total is Σ over harmonics k of min(max(height − threshold,
+    0), 15)/k, the height being the highest of the three lines about k ×
+    candidate (weight 1/k: the fundamental must carry weight of its own);
+    the first best candidate wins. Each harmonic's line is then the highest
+    within the comb's spread at that order. Returns (fundamental_hz, [(k,
+    freq_hz, height_db), ...]) per row, in order.
+    """
+    out: list = [None] * len(rows)
+    hr, dr, thr = (np.array(col) for col in zip(*rows))
+    for nk in np.unique(combs.n_ks[dr]):  # rows summing as many harmonics: the same sums as one by one
+        sel = np.flatnonzero(combs.n_ks[dr] == nk)
+        if nk == 0:
+            for r in sel:
+                out[r] = (float(combs.f0_hz[dr[r]]), [])
+            continue
+        ks, hrow, drow = combs.ks[:nk], hr[sel], dr[sel]
+        rh = hrow[:, None, None]
+        idx = combs.idx[drow, :, :nk]  # (R, C, nk)
+        hh = np.maximum(np.maximum(h[rh, idx - 1], h[rh, idx]), h[rh, idx + 1])
+        credit = np.minimum(np.maximum(hh - thr[sel, None, None], 0.0), 15.0)
+        total = (credit / ks).sum(axis=2) + 1e-6 * hh[:, :, 0]
+        best = combs.cand_hz[drow, np.argmax(total, axis=1)]  # (R,)
+        lines, heights = _lines_near(h, df, hrow, ks[None, :] * best[:, None], combs.half_lines[drow, :nk])
+        for j, r in enumerate(sel):
+            out[r] = (float(best[j]), [(int(k), int(i) * df, float(hk)) for k, i, hk in zip(ks, lines[j], heights[j])])
+    return out
+
+
+def _lines_near(
+    h: np.ndarray, df: float, rows: np.ndarray, f_hz: np.ndarray, half_lines: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_line_near` for many frequencies at once: ``f_hz[r, k]`` in the height spectrum ``h[rows[r]]``.
+
+    Returns the line indices (−1 where the window holds no line) and heights.
+    """
+    n = h.shape[1]
     k = np.rint(f_hz / df).astype(int)
     lo = np.maximum(1, k - half_lines)
-    hi = np.minimum(h.size, k + half_lines + 1)
-    cols = lo[:, None] + np.arange(max(1, int((hi - lo).max())))[None, :]
-    vals = np.where(cols < hi[:, None], h[np.minimum(cols, h.size - 1)], -np.inf)  # −inf off the window
-    j = np.argmax(vals, axis=1)  # the first highest line of each window, as np.argmax on the window
-    return np.where(lo < hi, lo + j, -1), vals[np.arange(k.size), j]
-
-
-@dataclass(frozen=True, slots=True)
-class _Comb:
-    """The harmonic comb of one defect on one SES's lines (see :func:`_comb`, :func:`_family`)."""
-
-    f0_hz: float  # kinematic fundamental
-    cand_hz: np.ndarray  # candidate fundamentals within ±tol, four per line
-    ks: np.ndarray  # harmonic numbers searched (those below the view's top frequency)
-    idx: np.ndarray  # [candidate, harmonic]: the line nearest k × candidate, within 1 … n_lines − 2
-    half_lines: np.ndarray  # per harmonic: half-width, lines, of the window its line is taken from
-
-
-def _comb(df: float, f0_hz: float, tol: float, n_harm: int, fmax_hz: float, n_lines: int) -> _Comb:
-    """Candidate fundamentals within ±``tol`` of ``f0_hz`` and where their harmonics fall (``df`` Hz lines).
-
-    Harmonics are searched up to ``n_harm``, below ``fmax_hz`` at the top
-    of the slip band; ``n_lines`` is the length of the height spectra the
-    comb is laid on. It depends on the view and the defect only, so one comb
-    serves every search of that defect on that view.
-    """
-    lo, hi = f0_hz * (1 - tol), f0_hz * (1 + tol)
-    cand = np.arange(int(np.floor(lo / df)), int(np.ceil(hi / df)) + 1) * df
-    # finer grid than the lines, so higher harmonics land on the right line
-    cand = np.linspace(cand[0], cand[-1], 4 * cand.size)
-    ks = np.arange(1, n_harm + 1)
-    ks = ks[ks * f0_hz * (1 + tol) < fmax_hz]
-    idx = np.rint(cand[:, None] * ks[None, :] / df).astype(int)
-    idx = np.minimum(np.maximum(idx, 1), n_lines - 2)
-    half = 1 + (ks * (cand[1] - cand[0]) / df + 0.5).astype(int)  # the grid's spread at harmonic k
-    return _Comb(f0_hz, cand, ks, idx, half)
-
-
-def _family(h: np.ndarray, df: float, comb: _Comb, thr: float) -> tuple[float, list[tuple[int, float, float]]]:
-    """Best fundamental of ``comb`` in the height spectrum ``h`` (dB) by a harmonic comb; its harmonics.
-
-    Returns (fundamental_hz, [(k, freq_hz, height_db), ...]).
-    """
-    ks, idx = comb.ks, comb.idx
-    if ks.size == 0:
-        return comb.f0_hz, []
-    hh = np.maximum(np.maximum(h[idx - 1], h[idx]), h[idx + 1])
-    credit = np.minimum(np.maximum(hh - thr, 0.0), 15.0)
-    # the fundamental must carry weight of its own: weight 1/k favours low harmonics
-    total = (credit / ks[None, :]).sum(axis=1) + 1e-6 * hh[:, 0]
-    best = float(comb.cand_hz[int(np.argmax(total))])
-    # each harmonic's highest line within the comb's spread at that order
-    lines, heights = _lines_near(h, df, ks * best, comb.half_lines)
-    return best, [(int(k), int(i) * df, float(hk)) for k, i, hk in zip(ks, lines, heights)]
+    hi = np.minimum(n, k + half_lines + 1)
+    cols = lo[..., None] + np.arange(max(1, int((hi - lo).max())))
+    vals = np.where(cols < hi[..., None], h[rows[:, None, None], np.minimum(cols, n - 1)], -np.inf)  # −inf off it
+    j = np.argmax(vals, axis=2)  # the first highest line of each window, as np.argmax on the window
+    return np.where(lo < hi, lo + j, -1), np.take_along_axis(vals, j[..., None], axis=2)[..., 0]
 
 
 def _sidebands(
@@ -306,7 +338,7 @@ def _sidebands(
 def _score_defect(
     name: str,
     defect: str,
-    comb: _Comb,
+    family: tuple[float, list[tuple[int, float, float]]],
     df: float,
     h: np.ndarray,
     thr: float,
@@ -315,15 +347,16 @@ def _score_defect(
     view: str,
     sigma_scale: float = 1.0,
 ) -> DefectScore:
-    """Score one defect family (its ``comb``) in one height spectrum ``h`` (lines ``df`` Hz apart; count above ``thr`` dB).
+    """Score one defect family found in the height spectrum ``h`` (lines ``df`` Hz apart; count above ``thr`` dB).
 
+    ``family`` is the fundamental and harmonics :func:`_families` found.
     Credits are dB above ``thr`` times ``sigma_scale``: a smoothed spectrum
     fluctuates √(M/1.5) times less than single lines, so a dB of it counts
     that many times more (same credit for the same number of standard
     deviations).
     """
     scale = sigma_scale
-    f0, harms = _family(h, df, comb, thr)
+    f0, harms = family
     score = 0.0
     rank = 0.0
     evidence = []
@@ -437,41 +470,44 @@ def score_bearing(
             cache[key] = h
         return cache[key][:n]  # the first n heights are the same however many were computed
 
-    combs: dict[tuple[int, str], _Comb] = {}  # per view and defect, for every round
+    names = list(defects)
+    combs: list[_Combs] = []  # per view, every defect: the same in every round
+    for ses, _, _, _, n in prepared:
+        fmax = min(float(ses.f_hz[-1]), 0.8 * (ses.band_hz[1] - ses.band_hz[0]))
+        combs.append(_combs(ses.bin_width_hz, [defects[d] * speed_hz for d in names], settings.slip_tol,
+                            settings.n_harmonics, fmax, n))
 
-    def run(names, masks):
+    def run(remaining, masks):
         best: dict[str, DefectScore] = {}
         for i, ((ses, sync, view, width, n), mask) in enumerate(zip(prepared, masks)):
             df = ses.bin_width_hz
-            sharp = np.where(mask, 0.0, heights(i, 1))
-            for defect in names:
-                order = defects[defect]
-                m = int(round(settings.slip_tol * order * speed_hz / df)) | 1
-                cands = [(sharp, settings.min_height_db, 1.0)]
+            searches = []  # (defect, smoothing lines, threshold dB, credit scale): line by line, then smoothed
+            for defect in remaining:
+                m = int(round(settings.slip_tol * defects[defect] * speed_hz / df)) | 1
+                searches.append((defect, 1, settings.min_height_db, 1.0))
                 if m >= 3:
-                    smooth = np.where(mask, 0.0, heights(i, m))
                     m_eff = math.sqrt(m / 1.5)
-                    cands.append((smooth, 10 * math.log10(1 + 8.0 / m_eff), m_eff))
-                if (i, defect) not in combs:
-                    fmax = min(float(ses.f_hz[-1]), 0.8 * (ses.band_hz[1] - ses.band_hz[0]))
-                    combs[i, defect] = _comb(df, order * speed_hz, settings.slip_tol, settings.n_harmonics, fmax, n)
-                for h, thr, sig in cands:
-                    sc = _score_defect(spec.name, defect, combs[i, defect], df, h, thr, speed_hz, o.ftf, view, sig)
-                    if sc.defect not in best or sc.score > best[sc.defect].score:
-                        best[sc.defect] = sc
+                    searches.append((defect, m, 10 * math.log10(1 + 8.0 / m_eff), m_eff))
+            smoothing = sorted({m for _, m, _, _ in searches})
+            h = np.where(mask, 0.0, np.stack([heights(i, m) for m in smoothing]))  # a row per smoothing
+            rows = [(smoothing.index(m), names.index(d), thr) for d, m, thr, _ in searches]
+            for (defect, m, thr, sig), (hrow, _, _), fam in zip(searches, rows, _families(h, df, combs[i], rows)):
+                sc = _score_defect(spec.name, defect, fam, df, h[hrow], thr, speed_hz, o.ftf, view, sig)
+                if sc.defect not in best or sc.score > best[sc.defect].score:
+                    best[sc.defect] = sc
         return best
 
     # explain away: the family with the strongest harmonics wins; its lines
     # (harmonics and their 1X/FTF sidebands) are masked and the rest re-scored,
     # so a family cannot borrow another's lines through a slip-shifted fundamental
     masks = [p[1].copy() for p in prepared]
-    names = list(defects)
+    remaining = list(names)
     out: dict[str, DefectScore] = {}
-    while names:
-        best = run(names, masks)
+    while remaining:
+        best = run(remaining, masks)
         win = max(best.values(), key=lambda d: (d.rank, d.score))
         out[win.defect] = win
-        names = [n for n in names if (n[:4] if n.startswith("ball") else n) != win.defect]
+        remaining = [n for n in remaining if (n[:4] if n.startswith("ball") else n) != win.defect]
         if win.confidence < settings.report_confidence:
             out.update({d: sc for d, sc in best.items() if d not in out})
             break
