@@ -39,7 +39,8 @@ def test_quick_run_prints_the_figures(tmp_path):
     text = p.stdout
     for needle in ("Machine:", "25600 Hz × 65536", "51200 Hz × 65536", "bare rfft ms", "real-time factor",
                    "Per-stage breakdown", "`pipeline.analyse_capture`", "÷ bare import", "Start-up to the first capture",
-                   "outbox durable enqueue", "msg/s", "trend database insert", "rows/s", "## Replay"):
+                   "outbox durable enqueue", "msg/s", "trend database insert", "rows/s", "## Replay",
+                   "Envelope analysis with band selection", "bearing stage's bands"):
         assert needle in text, f"{needle!r} missing from the output"
     assert out.read_text(encoding="utf-8").strip() == text.strip()
     fig = json.loads(js.read_text(encoding="utf-8"))
@@ -47,6 +48,8 @@ def test_quick_run_prints_the_figures(tmp_path):
         assert a["analysis_cpu_ms"]["median"] > 0 and a["rfft_cpu_ms"]["median"] > 0
         assert a["real_time_factor"] > 0 and a["fft_ratio"] > 1
         assert any(k.endswith("spectra.accel_spectrum") for k in a["stages"])
+    env = fig["envelope"]["searches"]["bearing stage's bands"]
+    assert 0 < env["cpu_ms"]["median"] <= env["cpu_p90_ms"] and env["band_hz"][0] < env["band_hz"][1]
     svc = fig["service"]
     assert svc["service_rss_mb"] > 0 and svc["bare_hwm_mb"] > 0 and svc["start_s"] > 0
     assert svc["soak_captures"] >= 20
