@@ -155,7 +155,8 @@ def _height_db(ses: EnvelopeSpectrum, width_hz: float, smooth_lines: int = 1, n_
     step = max(1, w // 2)  # block medians every w/2 lines, interpolated: the median floor at a fraction of the cost
     half = w // 2
     n = a.size if n_lines is None else min(a.size, int(n_lines))
-    # heights of lines < n read the log amplitudes of lines < n + step + half (the block median past them)
+    # heights of lines < n read the log amplitudes of lines < n + step + half (the block median past them);
+    # the medians past that, where the cut stands in for the spectrum's end, are not read
     need = n + step + half
     cut = need + smooth_lines // 2 + 1  # ... and the smoothing reads half its width further
     if cut < a.size:
@@ -442,9 +443,11 @@ def score_bearing(
     sit above the 99.9th percentile of smoothed noise-only SES lines
     measured on the healthy records (about 4 dB at M = 29).
 
-    ``heights_cache`` (a dict the caller keeps while ``views`` live) shares
-    the line heights between bearings scored on the same views: they depend
-    only on the view, the floor width and the smoothing, not on the bearing.
+    Heights and masks cover only the lines the search can read
+    (:func:`_lines_searched`), from 0 Hz. ``heights_cache`` (a dict the
+    caller keeps while ``views`` live) shares the line heights between
+    bearings scored on the same views: they depend only on the view, the
+    floor width and the smoothing, not on the bearing.
     """
     o = spec.orders
     defects = {"outer": o.bpfo, "inner": o.bpfi, "ball": 2 * o.bsf, "ball1": o.bsf, "cage": o.ftf}

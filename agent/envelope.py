@@ -275,9 +275,9 @@ def envelope_spectrum(
     ``fmax_env_hz`` trims the returned spectrum.
     """
     arr = _check_signal(x, fs_hz)
-    return envelope_from_spectrum(_spectrum_of(arr, whiten), arr.size, fs_hz, band_hz, prewhitened=whiten, select_band=select_band,
-                                  fmin_hz=fmin_hz, fmax_hz=fmax_hz, min_bandwidth_hz=min_bandwidth_hz,
-                                  fmax_env_hz=fmax_env_hz)
+    return envelope_from_spectrum(_spectrum_of(arr, whiten), arr.size, fs_hz, band_hz, prewhitened=whiten,
+                                  select_band=select_band, fmin_hz=fmin_hz, fmax_hz=fmax_hz,
+                                  min_bandwidth_hz=min_bandwidth_hz, fmax_env_hz=fmax_env_hz)
 
 
 def envelope_from_spectrum(
