@@ -539,7 +539,8 @@ def diagnose_bearings(
             all_scores[i] = score_bearing(bearings[i], kept, speed_hz, settings, {})
         win = next(iter(all_scores[i].values()))
         if win.confidence >= settings.call_confidence and n + 1 < len(order):
-            own = [_family_mask(ses.f_hz, win, speed_hz, bearings[i].orders.ftf * speed_hz) for ses in views]
+            own = [_claimed_lines(ses.f_hz, win, speed_hz, bearings[i].orders.ftf * speed_hz, max_defect, settings)
+                   for ses in views]
             claims = own if claims is None else [c | m for c, m in zip(claims, own)]
     for b, scores in zip(bearings, all_scores):
         top = next(iter(scores.values()))  # the family that explains most
@@ -569,6 +570,35 @@ def _top_strength(scores: dict[str, DefectScore]) -> tuple[float, float]:
     """(rank, score) of a bearing's leading family: the order in which bearings claim their lines."""
     top = next(iter(scores.values()))
     return top.rank, top.score
+
+
+def _claimed_lines(f_hz: np.ndarray, win: DefectScore, speed_hz: float, ftf_hz: float, max_defect_hz: float,
+                   settings: BearingSettings) -> np.ndarray:
+    """Lines a called family keeps from the other bearings: its harmonics and their sidebands, with their skirts.
+
+    Each line is claimed ± half the slip tolerance (1 % by default) of its
+    frequency, the spread random slip gives a defect tone (Randall & Antoni
+    2011, §2.1), at least ± 2.5 lines and at most ± a quarter of the
+    fundamental; harmonics are claimed up to ``n_harmonics`` + 1 times the
+    fastest defect tone searched, beyond which no family is scored.
+    """
+    df = float(f_hz[1] - f_hz[0])
+    f0 = win.fundamental_hz
+    top = min(float(f_hz[-1]), (settings.n_harmonics + 1) * max_defect_hz)
+    ks = np.arange(1, int(top / f0) + 1)
+    centres = [ks * f0]
+    spacing = speed_hz if win.defect == "inner" else ftf_hz if win.defect == "ball" else 0.0
+    if spacing:
+        centres += [ks * f0 - spacing, ks * f0 + spacing]
+    c = np.concatenate(centres)
+    c = c[(c > 0) & (c < f_hz[-1])]
+    half = np.minimum(np.maximum(2.5 * df, 0.5 * settings.slip_tol * c), 0.25 * f0)
+    lo = np.clip(np.floor((c - half) / df).astype(int), 0, f_hz.size)
+    hi = np.clip(np.ceil((c + half) / df).astype(int) + 1, 0, f_hz.size)
+    mask = np.zeros(f_hz.size, dtype=bool)
+    for a, b in zip(lo, hi):
+        mask[a:b] = True
+    return mask
 
 
 def _lines_at_floor(ses: EnvelopeSpectrum, mask: np.ndarray, width_hz: float) -> EnvelopeSpectrum:
