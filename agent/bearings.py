@@ -431,18 +431,22 @@ def score_bearing(
     return out
 
 
-def _family_mask(f_hz: np.ndarray, win: DefectScore, speed_hz: float, ftf_hz: float) -> np.ndarray:
-    """Lines of a winning family: all harmonics of its fundamental and their sidebands."""
+def _family_mask(f_hz: np.ndarray, win: DefectScore, speed_hz: float, ftf_hz: float, *, rel_half: float = 0.003,
+                 top_hz: float | None = None, max_half_hz: float = np.inf) -> np.ndarray:
+    """Lines of a winning family: all harmonics of its fundamental (up to ``top_hz``) and their sidebands.
+
+    Each line ± max(2.5 lines, ``rel_half`` × its frequency), at most ± ``max_half_hz``.
+    """
     df = float(f_hz[1] - f_hz[0])
     f0 = win.fundamental_hz
-    ks = np.arange(1, int(f_hz[-1] / f0) + 1)
+    ks = np.arange(1, int(min(f_hz[-1], top_hz or np.inf) / f0) + 1)
     centres = [ks * f0]
     spacing = speed_hz if win.defect == "inner" else ftf_hz if win.defect == "ball" else 0.0
     if spacing:
         centres += [ks * f0 - spacing, ks * f0 + spacing]
     c = np.concatenate(centres)
     c = c[(c > 0) & (c < f_hz[-1])]
-    half = np.maximum(2.5 * df, 0.003 * c)
+    half = np.minimum(np.maximum(2.5 * df, rel_half * c), max_half_hz)
     mask = np.zeros(f_hz.size, dtype=bool)
     lo = np.clip(np.floor((c - half) / df).astype(int), 0, f_hz.size)
     hi = np.clip(np.ceil((c + half) / df).astype(int) + 1, 0, f_hz.size)
@@ -582,23 +586,8 @@ def _claimed_lines(f_hz: np.ndarray, win: DefectScore, speed_hz: float, ftf_hz: 
     fundamental; harmonics are claimed up to ``n_harmonics`` + 1 times the
     fastest defect tone searched, beyond which no family is scored.
     """
-    df = float(f_hz[1] - f_hz[0])
-    f0 = win.fundamental_hz
-    top = min(float(f_hz[-1]), (settings.n_harmonics + 1) * max_defect_hz)
-    ks = np.arange(1, int(top / f0) + 1)
-    centres = [ks * f0]
-    spacing = speed_hz if win.defect == "inner" else ftf_hz if win.defect == "ball" else 0.0
-    if spacing:
-        centres += [ks * f0 - spacing, ks * f0 + spacing]
-    c = np.concatenate(centres)
-    c = c[(c > 0) & (c < f_hz[-1])]
-    half = np.minimum(np.maximum(2.5 * df, 0.5 * settings.slip_tol * c), 0.25 * f0)
-    lo = np.clip(np.floor((c - half) / df).astype(int), 0, f_hz.size)
-    hi = np.clip(np.ceil((c + half) / df).astype(int) + 1, 0, f_hz.size)
-    mask = np.zeros(f_hz.size, dtype=bool)
-    for a, b in zip(lo, hi):
-        mask[a:b] = True
-    return mask
+    return _family_mask(f_hz, win, speed_hz, ftf_hz, rel_half=0.5 * settings.slip_tol,
+                        top_hz=(settings.n_harmonics + 1) * max_defect_hz, max_half_hz=0.25 * win.fundamental_hz)
 
 
 def _lines_at_floor(ses: EnvelopeSpectrum, mask: np.ndarray, width_hz: float) -> EnvelopeSpectrum:
