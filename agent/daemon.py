@@ -286,6 +286,7 @@ class Daemon:
                 reason=str(doc.get("reason", "")),
                 mode=str(doc.get("mode", "monitor")),
                 finding_codes=tuple(doc.get("finding_codes", ())),
+                finding_spells=tuple((str(c), float(t), int(m)) for c, t, m in doc.get("finding_spells", ())),
             )
             alarm_id = doc.get("open_alarm_id")
             if isinstance(alarm_id, str) and self.ms.state in BAD_STATES:

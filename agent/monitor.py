@@ -23,6 +23,7 @@ import dataclasses
 from dataclasses import dataclass, field
 from typing import Any
 
+from agent.advice import persisting
 from agent.assess import EngineState, judge_analysis
 from agent.baseline import Baselines
 from agent.config import AgentConfig
@@ -57,6 +58,7 @@ class MonitorState:
     mode_until_utc_s: float | None = None
     n_captures: int = 0
     finding_codes: tuple[str, ...] = ()
+    finding_spells: tuple[tuple[str, float, int], ...] = ()  # (code, since, misses): agent.advice.persisting
     engine: Any = None  # alarm engine state (agent.assess), when present
     baselines: Any = None  # learned baselines (agent.baseline), when present
 
@@ -71,6 +73,7 @@ class MonitorState:
             "mode_until_utc_s": self.mode_until_utc_s,
             "n_captures": self.n_captures,
             "finding_codes": list(self.finding_codes),
+            "finding_spells": [list(x) for x in self.finding_spells],
         }
 
 
@@ -172,7 +175,9 @@ def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConf
         reason = f"maintenance mode: alarms held ({reason})"
         new_state = MachineState.NORMAL
     action, urgency = STATE_ACTION[new_state]
-    findings = analysis.findings
+    # findings that harm while they last (cavitation) are raised when shown without a break
+    findings, spells = persisting(analysis.findings, {f.code for f in reportable_findings(analysis.findings)},
+                                  ms.finding_spells, t)
     events: list[dict] = []
     since = ms.since_utc_s if new_state == ms.state else t
     if new_state != ms.state:
@@ -212,7 +217,7 @@ def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConf
     )
     new_ms = dataclasses.replace(
         ms, state=new_state, since_utc_s=since, reason=reason, n_captures=ms.n_captures + 1, finding_codes=codes,
-        last_speed_hz=speed_hz, engine=engine, baselines=baselines,
+        finding_spells=spells, last_speed_hz=speed_hz, engine=engine, baselines=baselines,
     )
     return result, new_ms
 
