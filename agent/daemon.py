@@ -425,6 +425,8 @@ class Daemon:
         return sid
 
     def _publish(self, result: CaptureResult, snapshot_id: str) -> None:
+        """One capture's messages (state if it changed, measurements, events, findings),
+        queued in one outbox transaction: one disk sync, all or none."""
         if self.link is None:
             return
         from agent import mqtt as m
@@ -432,34 +434,52 @@ class Daemon:
 
         t = result.t_utc_s
         mode = self.ms.mode
+        out: list[m.Outgoing] = []
         try:
             shown = (result.state, result.reason, mode)
             if shown != self.last_state_published:
                 self.last_state_published = shown
-                self.link.send("state", m.state_payload(result.state, result.since_utc_s, result.reason, result.action,
-                                                        result.urgency, t_utc_s=t, mode=mode),
-                               kind=Kind.KEPT, retain=True, replace_key="state")
+                out.append(m.Outgoing("state", m.state_payload(
+                    result.state, result.since_utc_s, result.reason, result.action, result.urgency,
+                    t_utc_s=t, mode=mode), Kind.KEPT, retain=True, replace_key="state"))
             values = {k: v for k, v in result.features.items() if k.endswith(m.UNIT_SUFFIXES) or k in m.DIMENSIONLESS}
             if result.speed_hz:
                 values["speed_hz"] = result.speed_hz
                 values["speed_rpm"] = result.speed_hz * 60.0
             if values:
-                self.link.send("measurements", m.measurements_payload(values, t_utc_s=t, capture_seq=result.seq,
-                                                                      state=result.state), kind=Kind.PERIODIC)
+                out.append(m.Outgoing("measurements", m.measurements_payload(
+                    values, t_utc_s=t, capture_seq=result.seq, state=result.state), Kind.PERIODIC))
             for ev in result.events:
-                self.link.send("events", m.event_payload(
+                out.append(m.Outgoing("events", m.event_payload(
                     ev["event"], t_utc_s=t, state=result.state, previous_state=ev.get("previous_state", ""),
                     severity=ev.get("severity", ""), title=ev.get("title", ev.get("reason", "")),
-                    finding_code=ev.get("code", ""), snapshot_id=snapshot_id, detail=ev), kind=Kind.KEPT)
+                    finding_code=ev.get("code", ""), snapshot_id=snapshot_id, detail=ev), Kind.KEPT))
             if result.events:
-                self.link.send("findings", m.findings_payload(result.findings, t_utc_s=t, state=result.state),
-                               kind=Kind.KEPT, retain=True, replace_key="findings")
+                out.append(m.Outgoing("findings", m.findings_payload(result.findings, t_utc_s=t, state=result.state),
+                                      Kind.KEPT, retain=True, replace_key="findings"))
+            if out:
+                self._send_capture(out)
         except (AgentError, ValueError) as exc:
             self.health.publish_errors += 1
             self.health.last_error = str(exc)
             if isinstance(exc, StoreError):  # the outbox could not write
                 self.health.storage_problem = str(exc)
             log_event("publish_error", "warning", error=str(exc))
+
+    def _send_capture(self, out: list) -> None:
+        """Queue ``out`` together; if one of them can never be queued (``ValueError``: larger
+        than a quarter of the outbox) queue the others one by one, then raise for it."""
+        try:
+            self.link.send_many(out)
+            return
+        except ValueError as exc:
+            bad = exc
+        for o in out:
+            try:
+                self.link.send_many([o])
+            except ValueError as exc:
+                bad = exc
+        raise bad
 
     def _publish_health(self, now_mono: float) -> None:
         if self.link is None or now_mono < self.next_health_mono:
