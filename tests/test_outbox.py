@@ -272,8 +272,9 @@ def test_enqueue_many_one_transaction_same_outcome_as_one_by_one(tmp_path):
         key = rng.choice([None, None, None, "state", "health"])
         body = json.dumps({"n": i, "pad": "x" * rng.randint(20, 500)}).encode()
         msgs.append(NewMessage(TOPIC, body, kind, msg_id=f"m{i}", replace_key=key))
-    one = Outbox(tmp_path / "one.sqlite", max_bytes=8192, overflow_topic=TOPIC)
-    many = Outbox(tmp_path / "many.sqlite", max_bytes=8192, overflow_topic=TOPIC)
+    # one clock for both: the notice's time stamp is part of its size
+    one = Outbox(tmp_path / "one.sqlite", max_bytes=8192, overflow_topic=TOPIC, clock=lambda: 1.8e9)
+    many = Outbox(tmp_path / "many.sqlite", max_bytes=8192, overflow_topic=TOPIC, clock=lambda: 1.8e9)
     statements: list[str] = []
     many._db.set_trace_callback(statements.append)
     got_one, got_many = [], []
