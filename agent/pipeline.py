@@ -145,18 +145,15 @@ def floor_spectrum(accel_ms2, fs_hz: float, line_hz: float = 1.5) -> Spectrum:
     """A well-averaged acceleration spectrum of about ``line_hz`` per line for floor levels and humps.
 
     4-term Blackman-Harris window (side lobes below −92 dB; Harris 1978), so
-    the leakage skirts of strong tones do not pose as a raised floor or a hump.
+    the leakage skirts of strong tones do not pose as a raised floor or a hump;
+    Welch averaging with 50 % overlap (the same figures as
+    ``scipy.signal.welch(..., scaling="spectrum")``, from a shared plan).
     """
-    from scipy import signal as sps
-
     x = np.asarray(accel_ms2, dtype=np.float64)
     n = 1 << int(round(np.log2(fs_hz / line_hz)))
     n = int(min(n, max(64, x.size // 4)))
-    win = sps.get_window("blackmanharris", n, fftbins=True)
-    f, p = sps.welch(x, fs=fs_hz, window=win, nperseg=n, noverlap=n // 2, scaling="spectrum", detrend="constant")
-    enbw = n * float(np.sum(win**2)) / float(win.sum()) ** 2
-    return Spectrum(f_hz=f, power=p, quantity="acceleration", unit="m/s2", window="blackmanharris",
-                    bin_width_hz=fs_hz / n, enbw_bins=enbw, n_averages=max(1, 2 * (x.size // n) - 1), nperseg=n)
+    plan = SpectrumPlan.with_segments(fs_hz, n, n // 2, window="blackmanharris")
+    return accel_spectrum(x, plan)
 
 
 def with_diagnosis(a: Analysis, cfg: AgentConfig) -> Analysis:

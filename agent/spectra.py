@@ -28,7 +28,9 @@ from scipy import fft, ndimage, signal
 
 from agent.model import Peak
 
-WINDOWS = ("hann", "flattop", "rectangular")
+#: windows of the analysis spectra; "blackmanharris" (4-term, side lobes below −92 dB; Harris 1978)
+#: is the floor spectrum's, for levels between tones
+WINDOWS = ("hann", "flattop", "rectangular", "blackmanharris")
 #: samples per FFT batch in :func:`_segment_abs2` (256 kB of float64)
 _BLOCK_SAMPLES = 1 << 15
 #: half-width of the main lobe in lines, for summing a tone's power
@@ -128,6 +130,15 @@ class SpectrumPlan:
                 nperseg = 1 << int(np.floor(np.log2(n_samples)))
         noverlap = int(round(overlap * nperseg))
         return _plan(cls, float(fs_hz), nperseg, noverlap, window)
+
+    @classmethod
+    def with_segments(cls, fs_hz: float, nperseg: int, noverlap: int, *, window: str = "hann") -> "SpectrumPlan":
+        """A plan with exactly ``nperseg`` samples per segment (odd allowed) and ``noverlap`` shared."""
+        if not fs_hz > 0:
+            raise ValueError(f"fs_hz must be > 0, got {fs_hz!r}")
+        if not 0 <= noverlap < nperseg:
+            raise ValueError(f"need 0 <= noverlap < nperseg, got {noverlap}, {nperseg}")
+        return _plan(cls, float(fs_hz), int(nperseg), int(noverlap), window)
 
 
 @functools.lru_cache(maxsize=8)

@@ -143,3 +143,20 @@ def test_bad_arguments_raise_value_error():
         SpectrumPlan.build(FS, 4096, window="kaiser")
     with pytest.raises(ValueError, match="shorter"):
         accel_spectrum(np.ones(100), SpectrumPlan.build(FS, 4096))
+
+
+@pytest.mark.parametrize("n_samples", [65536, 121265, 1004, 300])
+def test_floor_spectrum_equals_scipy_welch(n_samples):
+    # Reference library: scipy.signal.welch with a periodic 4-term Blackman-Harris window,
+    # "spectrum" scaling, 50 % overlap, mean removed per segment — line by line.
+    from agent.pipeline import floor_spectrum
+
+    x = np.random.default_rng(11).normal(0, 1.0, n_samples) + tone(FS, 777.7, 3.0, n_samples)
+    ours = floor_spectrum(x, FS)
+    n = ours.nperseg
+    win = signal.get_window("blackmanharris", n, fftbins=True)
+    f, p = signal.welch(x, FS, window=win, nperseg=n, noverlap=n // 2, scaling="spectrum", detrend="constant")
+    assert n == min(16384, max(64, n_samples // 4))
+    np.testing.assert_allclose(ours.f_hz, f, rtol=1e-12)
+    np.testing.assert_allclose(ours.power, p, rtol=1e-9, atol=1e-12 * p.max())
+    assert ours.enbw_bins == pytest.approx(n * np.sum(win**2) / win.sum() ** 2, rel=1e-12)
