@@ -18,6 +18,7 @@ from agent.model import Capture, Finding, Peak
 from agent.orders import SpeedView, speed_view
 from agent.speed import SpeedEstimate
 from agent.spectra import (
+    CaptureSpectra,
     Spectrum,
     SpectrumPlan,
     accel_spectrum,
@@ -44,6 +45,7 @@ class Analysis:
     extras: dict = field(default_factory=dict)
     speed: SpeedView | None = None
     accounted: Any = None  # agent.peaks.AccountedSpectrum: every peak labelled (diagnosis stage)
+    spectra: CaptureSpectra | None = None  # the capture's acceleration spectra, shared by the stages
 
 
 def plan_for(cfg: AgentConfig, fs_hz: float, n_samples: int) -> SpectrumPlan:
@@ -68,13 +70,20 @@ def analyse_capture(
     cfg: AgentConfig,
     plan: SpectrumPlan | None = None,
     previous_speed: SpeedEstimate | None = None,
+    spectra: CaptureSpectra | None = None,
 ) -> Analysis:
-    """Spectra, overall levels, running speed, labelled peaks and order levels of one capture."""
+    """Spectra, overall levels, running speed, labelled peaks and order levels of one capture.
+
+    ``spectra`` is the capture's :class:`agent.spectra.CaptureSpectra` when
+    an earlier stage (the quality gate) made it: every acceleration spectrum
+    of the capture is then computed once for all the stages.
+    """
     if plan is None or plan.fs_hz != capture.fs_hz or plan.nperseg > capture.n_samples:
         plan = plan_for(cfg, capture.fs_hz, capture.n_samples)
+    spectra = CaptureSpectra.of(capture) if spectra is None else spectra.of_samples(capture.accel_ms2)
     band = iso_band_hz(cfg)
     band = (band[0], min(band[1], capture.fs_hz / 2.0))
-    acc = accel_spectrum(capture.accel_ms2, plan)
+    acc = spectra.accel(plan)
     vel = velocity_spectrum(acc, band[0])
     tm = time_metrics(capture.accel_ms2)
     overall = overall_levels(tm, vel, band, cfg.machine.iso_group, cfg.machine.support)
@@ -90,7 +99,7 @@ def analyse_capture(
     )
     sv = speed_view(
         capture.accel_ms2, capture.fs_hz, cfg.machine, vel=vel, peaks=peaks, fmax_hz=fmax,
-        f_low_hz=band[0], previous=previous_speed,
+        f_low_hz=band[0], previous=previous_speed, spectra=spectra,
     )
     peaks = sv.peaks
     a = Analysis(
@@ -105,6 +114,7 @@ def analyse_capture(
         fmax_hz=fmax,
         extras={"speed_hz": sv.speed.speed_hz} if sv.speed.found else {},
         speed=sv,
+        spectra=spectra,
     )
     return with_diagnosis(with_bearing_findings(a, cfg), cfg)
 
@@ -127,14 +137,17 @@ def with_bearing_findings(a: Analysis, cfg: AgentConfig) -> Analysis:
     if not speed_hz:
         return a  # no running speed, no bearing tones (with no bearing configured: unassigned families)
     x, fs, sp, angle_speed = a.capture.accel_ms2, a.capture.fs_hz, float(speed_hz), None
+    spectra = a.spectra  # the capture's own spectra serve only the time-domain samples
     view = a.speed
     if view is not None and view.tracked and view.profile is not None:
         spr = int(fs / (1.05 * (view.profile.mean_hz + view.profile.span_hz)))
         try:
             x, fs, sp, angle_speed = resample_to_angle(x, fs, view.profile, spr), float(spr), 1.0, view.profile.mean_hz
+            spectra = None
         except ValueError:
             pass  # fall back to the time-domain capture
-    found = bearing_findings(x, fs, sp, cfg.machine, cfg.analysis, angle_domain_speed_hz=angle_speed)
+    found = bearing_findings(x, fs, sp, cfg.machine, cfg.analysis, angle_domain_speed_hz=angle_speed,
+                             spectra=spectra)
     return replace(a, findings=a.findings + found) if found else a
 
 

@@ -20,7 +20,7 @@ Conventions
 from __future__ import annotations
 
 import functools
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
@@ -246,6 +246,55 @@ def accel_spectrum(accel_ms2: np.ndarray, plan: SpectrumPlan) -> Spectrum:
     """Welch-averaged acceleration power spectrum, m/s² r.m.s.² per line."""
     abs2 = _segment_abs2(accel_ms2, plan)
     return _spectrum(_scale_power(abs2.mean(axis=0), plan), plan, abs2.shape[0])
+
+
+@dataclass(frozen=True, slots=True, eq=False)
+class CaptureSpectra:
+    """The Welch acceleration spectra of one capture, each computed once and shared by the stages.
+
+    Every stage asks with its own plan (:meth:`accel`); plans that cut the
+    capture into the same segments with the same window (same sample rate,
+    window, segment length, and step when there is more than one segment)
+    give the same spectrum, which is computed on the first request only.
+    Made for one capture (the monitor step's or one analysis) and passed
+    along with it; ``accel_ms2`` is read-only.
+    """
+
+    accel_ms2: np.ndarray
+    fs_hz: float
+    _done: dict = field(default_factory=dict, repr=False)
+
+    def __post_init__(self) -> None:
+        x = np.asarray(self.accel_ms2, dtype=np.float64)
+        if x.flags.writeable:
+            x = x.copy()
+            x.setflags(write=False)
+        object.__setattr__(self, "accel_ms2", x)
+
+    @classmethod
+    def of(cls, capture) -> "CaptureSpectra":
+        """For a :class:`agent.model.Capture`."""
+        return cls(capture.accel_ms2, capture.fs_hz)
+
+    def of_samples(self, accel_ms2) -> "CaptureSpectra":
+        """Itself, after checking that ``accel_ms2`` are its samples (``ValueError`` otherwise)."""
+        x = np.asarray(accel_ms2)
+        if x is not self.accel_ms2 and not (x.shape == self.accel_ms2.shape and np.array_equal(x, self.accel_ms2)):
+            raise ValueError("these spectra belong to other samples")
+        return self
+
+    def accel(self, plan: SpectrumPlan) -> Spectrum:
+        """``accel_spectrum(self.accel_ms2, plan)``, computed once per segmentation."""
+        if plan.fs_hz != self.fs_hz:
+            raise ValueError(f"plan for {plan.fs_hz:g} Hz, capture sampled at {self.fs_hz:g} Hz")
+        n = self.accel_ms2.size
+        step = plan.nperseg - plan.noverlap
+        single = n < plan.nperseg + step  # one segment: the step does not matter
+        key = (plan.fs_hz, plan.window, plan.nperseg, 0 if single else step)
+        spec = self._done.get(key)
+        if spec is None:
+            spec = self._done[key] = accel_spectrum(self.accel_ms2, plan)
+        return spec
 
 
 def segment_spectra(accel_ms2: np.ndarray, plan: SpectrumPlan, n_lines: int | None = None) -> tuple[Spectrum, ...]:

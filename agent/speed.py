@@ -59,9 +59,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from agent.spectra import (
+    CaptureSpectra,
     Spectrum,
     SpectrumPlan,
-    accel_spectrum,
     find_peaks,
     noise_floor,
     noise_threshold_db,
@@ -445,17 +445,20 @@ def _resolution_check(speed_hz, line_hz, bin_hz):
     )
 
 
-def speed_spectrum(accel_ms2: np.ndarray, fs_hz: float, *, window: str = "hann") -> Spectrum:
+def speed_spectrum(
+    accel_ms2: np.ndarray, fs_hz: float, *, window: str = "hann", spectra: CaptureSpectra | None = None
+) -> Spectrum:
     """One Hann segment over the whole capture: the finest line spacing for speed.
 
     The segment length is the capture length rounded down to an even count,
-    so the line spacing is fs/N ≈ 1/capture length.
+    so the line spacing is fs/N ≈ 1/capture length. ``spectra`` (the same
+    samples' :class:`agent.spectra.CaptureSpectra`) shares it with other stages.
     """
     x = np.asarray(accel_ms2, dtype=np.float64)
     if x.ndim != 1 or x.size < 16:
         raise ValueError(f"accel_ms2 must be 1-D with at least 16 samples, got shape {x.shape}")
     plan = SpectrumPlan.build(fs_hz, x.size, window=window, lines=x.size // 2, overlap=0.0)
-    return accel_spectrum(x, plan)
+    return (CaptureSpectra(x, fs_hz) if spectra is None else spectra.of_samples(x)).accel(plan)
 
 
 # ---------------------------------------------------------------- within-capture speed

@@ -160,3 +160,25 @@ def test_floor_spectrum_equals_scipy_welch(n_samples):
     np.testing.assert_allclose(ours.f_hz, f, rtol=1e-12)
     np.testing.assert_allclose(ours.power, p, rtol=1e-9, atol=1e-12 * p.max())
     assert ours.enbw_bins == pytest.approx(n * np.sum(win**2) / win.sum() ** 2, rel=1e-12)
+
+
+def test_capture_spectra_computes_each_segmentation_once():
+    # Plans that cut the capture into the same segments share one spectrum, equal to scipy.signal.welch
+    # (reference library, "spectrum" scaling); a different segmentation is computed on its own.
+    from agent.spectra import CaptureSpectra
+
+    x = np.random.default_rng(2).normal(0, 1.0, N) + tone(FS, 250.0, 2.0, N)
+    spectra = CaptureSpectra(x, FS)
+    one_a = spectra.accel(SpectrumPlan.build(FS, N, lines=N // 2, overlap=0.5))  # a single segment ...
+    one_b = spectra.accel(SpectrumPlan.build(FS, N, lines=N // 2, overlap=0.0))  # ... whatever the overlap
+    assert one_a is one_b
+    _, p = signal.welch(x, FS, window="hann", nperseg=N, scaling="spectrum", detrend="constant")
+    np.testing.assert_allclose(one_a.power, p, rtol=1e-9, atol=1e-12 * p.max())
+    avg = spectra.accel(SpectrumPlan.build(FS, N, lines=4096, overlap=0.5))
+    assert avg is not one_a and avg.n_averages == 15
+    assert avg is spectra.accel(SpectrumPlan.build(FS, N, lines=4096, overlap=0.5))
+    np.testing.assert_array_equal(avg.power, accel_spectrum(x, SpectrumPlan.build(FS, N, lines=4096)).power)
+    with pytest.raises(ValueError):
+        spectra.of_samples(x[::-1])
+    with pytest.raises(ValueError):
+        spectra.accel(SpectrumPlan.build(2 * FS, N, lines=4096))
