@@ -194,8 +194,8 @@ class Spectrum:
         return float(self.f_hz[-1])
 
 
-def _segment_abs2(accel_ms2: np.ndarray, plan: SpectrumPlan) -> np.ndarray:
-    """|FFT|² of every windowed, mean-removed segment (rows), unscaled."""
+def _segment_abs2(accel_ms2: np.ndarray, plan: SpectrumPlan, n_lines: int | None = None) -> np.ndarray:
+    """|FFT|² of every windowed, mean-removed segment (rows), unscaled; the lowest ``n_lines`` lines only if given."""
     x = np.asarray(accel_ms2, dtype=np.float64)
     if x.ndim != 1:
         raise ValueError(f"accel_ms2 must be 1-D, got shape {x.shape}")
@@ -204,7 +204,9 @@ def _segment_abs2(accel_ms2: np.ndarray, plan: SpectrumPlan) -> np.ndarray:
     step = plan.nperseg - plan.noverlap
     n_seg = 1 + (x.size - plan.nperseg) // step
     seg = sliding_window_view(x, plan.nperseg)[::step][:n_seg]  # a view: no copy yet
-    out = np.empty((n_seg, plan.nperseg // 2 + 1))
+    all_lines = plan.nperseg // 2 + 1
+    keep = all_lines if n_lines is None else max(1, min(int(n_lines), all_lines))
+    out = np.empty((n_seg, keep))
     # a few segments at a time, so each block's copies stay in the processor's cache
     # (many short overlapping segments are several times the capture's size)
     rows = max(1, _BLOCK_SAMPLES // plan.nperseg)
@@ -213,18 +215,18 @@ def _segment_abs2(accel_ms2: np.ndarray, plan: SpectrumPlan) -> np.ndarray:
         block = block - block.mean(axis=1, keepdims=True)
         block *= plan.win
         # scipy.fft: the same pocketfft as numpy.fft, faster on the rows of a 2-D array
-        spec = fft.rfft(block, axis=1)
+        spec = fft.rfft(block, axis=1)[:, :keep]
         np.multiply(spec.real, spec.real, out=out[a : a + rows])
         out[a : a + rows] += spec.imag**2
     return out
 
 
 def _scale_power(power: np.ndarray, plan: SpectrumPlan) -> np.ndarray:
-    """|FFT|² (last axis) → tone r.m.s.² per line, in place: one-sided, window gain removed."""
+    """|FFT|² (last axis, from 0 Hz) → tone r.m.s.² per line, in place: one-sided, window gain removed."""
     power *= 2.0 / plan.win.sum() ** 2
     power[..., 0] /= 2.0
-    if plan.nperseg % 2 == 0:
-        power[..., -1] /= 2.0
+    if plan.nperseg % 2 == 0 and power.shape[-1] == plan.nperseg // 2 + 1:
+        power[..., -1] /= 2.0  # the Nyquist line, when kept
     return power
 
 
@@ -297,18 +299,25 @@ class CaptureSpectra:
         return spec
 
 
-def segment_spectra(accel_ms2: np.ndarray, plan: SpectrumPlan, n_lines: int | None = None) -> tuple[Spectrum, ...]:
-    """The acceleration spectrum of each segment of ``plan`` on its own (no averaging).
+def segment_powers(accel_ms2: np.ndarray, plan: SpectrumPlan, n_lines: int | None = None) -> np.ndarray:
+    """The acceleration power of each segment of ``plan`` on its own (rows; tone r.m.s.² per line).
 
-    Segment *i* starts at sample i·(nperseg − noverlap); each equals
-    ``accel_spectrum`` of that slice alone, computed in batches of FFTs.
-    ``n_lines`` keeps only the lowest lines (0 Hz up), when only those are read.
+    Segment *i* starts at sample i·(nperseg − noverlap); row *i* equals the
+    power of ``accel_spectrum`` of that slice alone, computed in batches of
+    FFTs. ``n_lines`` keeps only the lowest lines (0 Hz up), when only those
+    are read. Read-only.
     """
-    powers = _scale_power(_segment_abs2(accel_ms2, plan), plan)
-    keep = powers.shape[1] if n_lines is None else max(1, min(int(n_lines), powers.shape[1]))
-    f_hz = plan.f_hz[:keep]
+    powers = _scale_power(_segment_abs2(accel_ms2, plan, n_lines), plan)
+    powers.setflags(write=False)
+    return powers
+
+
+def segment_spectra(accel_ms2: np.ndarray, plan: SpectrumPlan, n_lines: int | None = None) -> tuple[Spectrum, ...]:
+    """:func:`segment_powers` as one :class:`Spectrum` per segment (no averaging)."""
+    powers = segment_powers(accel_ms2, plan, n_lines)
+    f_hz = plan.f_hz[: powers.shape[1]]
     return tuple(
-        Spectrum(f_hz=f_hz, power=row[:keep], quantity="acceleration", unit="m/s2", window=plan.window,
+        Spectrum(f_hz=f_hz, power=row, quantity="acceleration", unit="m/s2", window=plan.window,
                  bin_width_hz=plan.bin_width_hz, enbw_bins=plan.figures.enbw_bins, n_averages=1,
                  nperseg=plan.nperseg)
         for row in powers
@@ -463,6 +472,37 @@ def tone_at(spec: Spectrum, k: int) -> tuple[float, float]:
     else:
         amp = np.sqrt(spec.power[lo:hi].sum() / spec.enbw_bins)
     return float(f), float(amp)
+
+
+def tones_at_rows(
+    powers: np.ndarray, ks: np.ndarray, *, bin_width_hz: float, enbw_bins: float, window: str = "hann"
+) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`tone_at` for acceleration power rows, line ``ks[i]`` of row *i*: (freq_hz, r.m.s. amplitude).
+
+    The same arithmetic as :func:`tone_at` on each row (Grandke's estimator,
+    main-lobe sum ÷ ENBW), for all rows at once. Hann window only.
+    """
+    if window != "hann":
+        raise ValueError(f"tones_at_rows reads Hann spectra only, got {window!r}")
+    powers = np.asarray(powers, dtype=np.float64)
+    ks = np.asarray(ks, dtype=np.intp)
+    n = powers.shape[1]
+    rows = np.arange(powers.shape[0])
+    inner = (ks > 0) & (ks < n - 1)
+    km, kp = np.clip(ks - 1, 0, n - 1), np.clip(ks + 1, 0, n - 1)
+    a_km, a_k, a_kp = np.sqrt(powers[rows, km]), np.sqrt(powers[rows, ks]), np.sqrt(powers[rows, kp])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        up = a_kp >= a_km
+        alpha = np.where(up, a_kp, a_km) / a_k
+        delta = (2 * alpha - 1) / (alpha + 1)
+    delta = np.where(inner & (a_k > 0), np.where(up, delta, -delta), 0.0)
+    f = (ks + delta) * bin_width_hz
+    half = _LOBE_HALF_LINES[window]
+    lobe = 0.0  # the main lobe's lines summed in order, as np.sum does over a short slice
+    for d in range(-half, half + 1):
+        j = ks + d
+        lobe = lobe + np.where((j >= 0) & (j < n), powers[rows, np.clip(j, 0, n - 1)], 0.0)
+    return f, np.sqrt(lobe / enbw_bins)
 
 
 @functools.lru_cache(maxsize=8)

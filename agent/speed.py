@@ -65,8 +65,8 @@ from agent.spectra import (
     find_peaks,
     noise_floor,
     noise_threshold_db,
-    segment_spectra,
-    tone_at,
+    segment_powers,
+    tones_at_rows,
 )
 
 #: evidence cap per tone, dB above the noise-only level
@@ -493,8 +493,9 @@ class SpeedProfile:
 
     @property
     def mean_hz(self) -> float:
-        p = np.polynomial.Polynomial(self.coeffs).integ()
-        return float((p(self.duration_s) - p(0.0)) / self.duration_s)
+        rev = np.polynomial.polynomial.polyint(self.coeffs)  # revolutions since the first sample
+        pv = np.polynomial.polynomial.polyval
+        return float((pv(self.duration_s, rev) - pv(0.0, rev)) / self.duration_s)
 
     @property
     def span_hz(self) -> float:
@@ -594,15 +595,12 @@ def speed_profile(
             f"frames of {nfr / fs_hz:.3f} s ({bin_hz:.2f} Hz lines) are too short to track {h}X; "
             "use a longer frame_s"
         )
-    t_c, f_c, w_c = [], [], []
-    # tone_at reads a few lines around the ridge: the frames' lines above it are not kept
-    for s, sp in zip(starts, segment_spectra(x, plan, n_lines=khi + 8)):
-        k = klo + int(np.argmax(sp.power[klo : khi + 1]))
-        f, amp = tone_at(sp, k)
-        t_c.append((s + nfr / 2) / fs_hz)
-        f_c.append(f / h)
-        w_c.append(amp)
-    t_c, f_c, w_c = np.array(t_c), np.array(f_c), np.array(w_c)
+    # each frame's ridge line and its tone (tone_at reads a few lines around it: the lines above are not kept)
+    powers = segment_powers(x, plan, n_lines=khi + 8)
+    ridge = klo + np.argmax(powers[:, klo : khi + 1], axis=1)
+    f_r, w_c = tones_at_rows(powers, ridge, bin_width_hz=bin_hz, enbw_bins=plan.figures.enbw_bins)
+    t_c = (starts[: powers.shape[0]] + nfr / 2) / fs_hz
+    f_c = f_r / h
     deg = int(min(degree, max(0, t_c.size - 2)))
     # robust fit: drop frames far from a first fit (ridge jumps), refit
     coeffs = np.polynomial.polynomial.polyfit(t_c, f_c, deg, w=w_c)
