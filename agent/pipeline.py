@@ -24,6 +24,7 @@ from agent.spectra import (
     accel_spectrum,
     find_peaks,
     noise_floor,
+    velocity_floor,
     velocity_spectrum,
 )
 
@@ -46,6 +47,7 @@ class Analysis:
     speed: SpeedView | None = None
     accounted: Any = None  # agent.peaks.AccountedSpectrum: every peak labelled (diagnosis stage)
     spectra: CaptureSpectra | None = None  # the capture's acceleration spectra, shared by the stages
+    acc_floor: Any = None  # noise_floor(acc): the running-median floor the velocity floors are taken from
 
 
 def plan_for(cfg: AgentConfig, fs_hz: float, n_samples: int) -> SpectrumPlan:
@@ -88,7 +90,8 @@ def analyse_capture(
     tm = time_metrics(capture.accel_ms2)
     overall = overall_levels(tm, vel, band, cfg.machine.iso_group, cfg.machine.support)
     fmax = analysis_fmax_hz(cfg, capture.fs_hz)
-    floor = noise_floor(vel)
+    acc_floor = noise_floor(acc)
+    floor = velocity_floor(vel, acc, acc_floor)
     peaks = find_peaks(
         vel,
         floor,
@@ -115,6 +118,7 @@ def analyse_capture(
         extras={"speed_hz": sv.speed.speed_hz} if sv.speed.found else {},
         speed=sv,
         spectra=spectra,
+        acc_floor=acc_floor,
     )
     return with_diagnosis(with_bearing_findings(a, cfg), cfg)
 
@@ -187,14 +191,15 @@ def with_diagnosis(a: Analysis, cfg: AgentConfig) -> Analysis:
         speed_hz=a.speed.speed.speed_hz if found else None,
         speed_confidence=a.speed.speed.confidence if found else 0.0,
         expected=a.speed.expected if found else (),
-        bearing_findings=bearing,
+        bearing_findings=bearing, acc_floor=a.acc_floor,
     )
     return replace(a, accounted=accounted, findings=findings + others)
 
 
 def diagnosis_stage(capture: Capture, cfg: AgentConfig, acc: Spectrum, overall: OverallLevels, fmax_hz: float,
                     *, speed_hz: float | None, speed_confidence: float = 1.0, expected: tuple = (),
-                    bearing_findings: tuple[Finding, ...] = (), baseline_ratios: dict | None = None):
+                    bearing_findings: tuple[Finding, ...] = (), baseline_ratios: dict | None = None,
+                    acc_floor: np.ndarray | None = None):
     """Account for every peak, then diagnose and advise: (AccountedSpectrum, findings).
 
     ``baseline_ratios`` (optional): current level ÷ learned normal per feature
@@ -205,7 +210,9 @@ def diagnosis_stage(capture: Capture, cfg: AgentConfig, acc: Spectrum, overall: 
     Peaks are taken from a velocity spectrum with a lower cut than the ISO
     band (a quarter of the lowest running speed), so sub-synchronous tones
     (belts, oil whirl, half orders) are seen; the floor regions and humps
-    from a well-averaged spectrum of a few Hz per line.
+    from a well-averaged spectrum of a few Hz per line. ``acc_floor``
+    (``noise_floor(acc)``, when the caller has it) spares the peak floor's
+    running median.
     """
     from agent.advice import advise
     from agent.diagnose import DiagnosisInput, diagnose
@@ -214,7 +221,8 @@ def diagnosis_stage(capture: Capture, cfg: AgentConfig, acc: Spectrum, overall: 
     bin_hz = acc.bin_width_hz
     f_low = max(3 * bin_hz, min(iso_band_hz(cfg)[0], 0.25 * cfg.machine.speed_rpm[0] / 60.0))
     dvel = velocity_spectrum(acc, f_low)
-    pk = find_peaks(dvel, None, min_height_db=cfg.analysis.peak_min_height_db, fmin_hz=f_low, fmax_hz=fmax_hz,
+    dfloor = None if acc_floor is None else velocity_floor(dvel, acc, acc_floor)
+    pk = find_peaks(dvel, dfloor, min_height_db=cfg.analysis.peak_min_height_db, fmin_hz=f_low, fmax_hz=fmax_hz,
                     max_peaks=2 * cfg.analysis.max_peaks)
     cacc = floor_spectrum(capture.accel_ms2, capture.fs_hz)
     accounted = account_peaks(

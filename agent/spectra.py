@@ -362,6 +362,15 @@ def band_rms(spec: Spectrum, f_lo_hz: float, f_hi_hz: float) -> float:
     return float(np.sqrt(spec.power[sel].sum() / spec.enbw_bins))
 
 
+def _floor_width_lines(spec: Spectrum, width_hz: float | None) -> int:
+    """Width of the running median in lines (odd): ``width_hz``, or 2 % of the span and at least 15 lines."""
+    if width_hz is None:
+        width_lines = max(15, int(0.02 * spec.power.size))
+    else:
+        width_lines = max(5, int(round(width_hz / spec.bin_width_hz)))
+    return width_lines | 1
+
+
 def noise_floor(spec: Spectrum, width_hz: float | None = None) -> np.ndarray:
     """Local noise floor (power per line) by a running median of log power.
 
@@ -369,17 +378,12 @@ def noise_floor(spec: Spectrum, width_hz: float | None = None) -> np.ndarray:
     only a few lines), so it follows the broadband floor and resonance humps.
     ``width_hz`` defaults to 2 % of the span, at least 15 lines.
     """
-    n = spec.power.size
-    if width_hz is None:
-        width_lines = max(15, int(0.02 * n))
-    else:
-        width_lines = max(5, int(round(width_hz / spec.bin_width_hz)))
-    width_lines |= 1
+    width_lines = _floor_width_lines(spec, width_hz)
     power = spec.power
     weight = None
     if spec.quantity == "velocity":
         # the velocity floor falls as 1/f²: take the median on acceleration (flat-ish), convert back
-        weight = (2 * np.pi * spec.f_hz) ** 2
+        weight = _omega2(spec)
         power = power * weight
     floor = np.zeros_like(power)
     positive = np.flatnonzero(power > 0)
@@ -390,9 +394,53 @@ def noise_floor(spec: Spectrum, width_hz: float | None = None) -> np.ndarray:
     logp = np.log10(np.maximum(power[start:], tiny))
     floor[start:] = 10.0 ** ndimage.median_filter(logp, size=width_lines, mode="nearest")
     if weight is not None:
-        with np.errstate(divide="ignore"):
-            floor = np.where(spec.power > 0, floor / np.where(weight > 0, weight, np.inf), 0.0)
+        floor = _to_velocity(floor, spec, weight)
     return floor
+
+
+def _omega2(spec: Spectrum) -> np.ndarray:
+    """(2πf)² per line: velocity power × this = acceleration power (× 10⁶ for mm/s)."""
+    return (2 * np.pi * spec.f_hz) ** 2
+
+
+def _to_velocity(floor: np.ndarray, vel: Spectrum, weight: np.ndarray) -> np.ndarray:
+    with np.errstate(divide="ignore"):
+        return np.where(vel.power > 0, floor / np.where(weight > 0, weight, np.inf), 0.0)
+
+
+def velocity_floor(vel: Spectrum, acc: Spectrum, acc_floor: np.ndarray, width_hz: float | None = None) -> np.ndarray:
+    """``noise_floor(vel)`` for ``vel = velocity_spectrum(acc, f_low)``, from ``acc_floor = noise_floor(acc, width_hz)``.
+
+    The velocity floor takes its running median on vel·(2πf)² = acc·10⁶,
+    so away from the high-pass cut it is the acceleration floor converted;
+    only the lines within half a window of the cut, where the median window
+    is cut short, are computed again. Equal to ``noise_floor(vel, width_hz)``
+    to rounding; when lines sit at the floor's clipping level (below 10⁻¹⁶
+    of the largest) that is computed directly instead.
+    """
+    if vel.quantity != "velocity" or acc.quantity != "acceleration":
+        raise ValueError(f"need a velocity and an acceleration spectrum, got {vel.quantity!r}, {acc.quantity!r}")
+    n = vel.power.size
+    if acc.power.size != n or np.shape(acc_floor) != (n,) or not np.array_equal(vel.f_hz, acc.f_hz):
+        raise ValueError("vel, acc and acc_floor must be on the same lines")
+    width_lines = _floor_width_lines(vel, width_hz)
+    half = width_lines // 2
+    weight = _omega2(vel)
+    power = vel.power * weight
+    positive = np.flatnonzero(power > 0)
+    if positive.size == 0:
+        return np.zeros_like(power)
+    start = int(positive[0])
+    tail = start + half  # from here on every median window lies above the cut
+    tiny_v = max(float(power.max()) * 1e-16, 1e-30)
+    tiny_a = max(float(acc.power.max()) * 1e-16, 1e-30)
+    if tail >= n or np.any(power[start:] < tiny_v) or np.any(acc.power[start:] < tiny_a):
+        return noise_floor(vel, width_hz)
+    floor = np.zeros_like(power)
+    head = np.log10(power[start : min(n, start + 3 * half + 1)])
+    floor[start:tail] = 10.0 ** ndimage.median_filter(head, size=width_lines, mode="nearest")[:half]
+    floor[tail:] = acc_floor[tail:] * 1e6  # mm/s from m/s
+    return _to_velocity(floor, vel, weight)
 
 
 @functools.lru_cache(maxsize=64)

@@ -207,3 +207,24 @@ def test_segment_powers_and_row_tones_equal_the_one_segment_path():
     f0, a0 = tones_at_rows(rows[:1], np.array([1]), bin_width_hz=plan.bin_width_hz, enbw_bins=1.5)
     sp0 = segment_spectra(x, plan, n_lines=120)[0]
     assert (f0[0], a0[0]) == tone_at(replace(sp0, enbw_bins=1.5), 1)
+
+
+@pytest.mark.parametrize("f_low_hz", [2.5, 10.0, 400.0])
+def test_velocity_floor_from_the_acceleration_floor_equals_the_direct_one(f_low_hz):
+    # noise_floor(vel) takes its running median on vel·(2πf)² = acc·10⁶: converted from the
+    # acceleration floor it must agree to rounding, at the high-pass cut too.
+    from agent.spectra import velocity_floor
+
+    x = np.random.default_rng(9).normal(0, 0.05, N) + tone(FS, 24.6, 0.3, N) + tone(FS, 147.6, 0.5, N)
+    acc = accel_spectrum(x, SpectrumPlan.build(FS, N, lines=16384))
+    vel = velocity_spectrum(acc, f_low_hz)
+    direct = noise_floor(vel)
+    shared = velocity_floor(vel, acc, noise_floor(acc))
+    np.testing.assert_allclose(shared, direct, rtol=1e-12, atol=0)
+    assert np.all((shared == 0) == (direct == 0))
+    # a noise-free tone leaves lines at the floor's clipping level: computed directly, equal bit for bit
+    clean = accel_spectrum(tone(FS, 100.0, 1.0, N), SpectrumPlan.build(FS, N, lines=16384))
+    cvel = velocity_spectrum(clean, f_low_hz)
+    np.testing.assert_array_equal(velocity_floor(cvel, clean, noise_floor(clean)), noise_floor(cvel))
+    with pytest.raises(ValueError):
+        velocity_floor(acc, vel, noise_floor(acc))
