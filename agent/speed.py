@@ -191,7 +191,11 @@ def _match(
     cand_hz: np.ndarray, orders: np.ndarray, pk_f: np.ndarray, tol_abs_hz: float, tol_rel: float
 ) -> tuple[np.ndarray, np.ndarray]:
     """Index of the nearest peak to every order×candidate and its closeness (0..1)."""
-    target = cand_hz[:, None] * orders[None, :]
+    return _nearest_peak(cand_hz[:, None] * orders[None, :], pk_f, tol_abs_hz, tol_rel)
+
+
+def _nearest_peak(target: np.ndarray, pk_f: np.ndarray, tol_abs_hz: float, tol_rel: float):
+    """(index of the nearest peak, closeness 0..1) for every target frequency; ``pk_f`` ascending."""
     j = np.clip(np.searchsorted(pk_f, target), 1, pk_f.size - 1)
     left, right = pk_f[j - 1], pk_f[j]
     use_left = np.abs(target - left) <= np.abs(right - target)
@@ -199,6 +203,32 @@ def _match(
     d = np.abs(pk_f[idx] - target)
     tol = np.maximum(tol_abs_hz, tol_rel * target)
     close = np.clip(1.0 - (d / tol) ** 2, 0.0, 1.0)
+    return idx, close
+
+
+def _match_grid(
+    cand_hz: np.ndarray, orders: np.ndarray, pk_f: np.ndarray, tol_abs_hz: float, tol_rel: float
+) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_match` over an ascending candidate grid, worked out only where some peak is in reach.
+
+    Elsewhere closeness is 0 (and the index 0): every order×candidate within
+    a tolerance of a peak is in one of the ranges below, so the result
+    equals :func:`_match`'s wherever closeness is above 0.
+    """
+    idx = np.zeros((cand_hz.size, orders.size), dtype=np.intp)
+    close = np.zeros((cand_hz.size, orders.size))
+    pk = pk_f[np.isfinite(pk_f)]
+    reach = 1.1 * np.maximum(tol_abs_hz, tol_rel * pk) + 1e-9  # a little more than any tolerance there
+    first = np.searchsorted(cand_hz, ((pk - reach)[:, None] / orders[None, :]).ravel(), "left") - 1
+    last = np.searchsorted(cand_hz, ((pk + reach)[:, None] / orders[None, :]).ravel(), "right") + 1
+    first, last = np.clip(first, 0, cand_hz.size), np.clip(last, 0, cand_hz.size)
+    n_rows = np.maximum(last - first, 0)
+    if not n_rows.any():
+        return idx, close
+    # the candidate rows of every (peak, order) range, one after the other
+    rows = np.arange(n_rows.sum()) + np.repeat(first - (np.cumsum(n_rows) - n_rows), n_rows)
+    cols = np.repeat(np.tile(np.arange(orders.size), pk.size), n_rows)
+    idx[rows, cols], close[rows, cols] = _nearest_peak(cand_hz[rows] * orders[cols], pk_f, tol_abs_hz, tol_rel)
     return idx, close
 
 
@@ -287,7 +317,7 @@ def estimate_speed(
     # plus the smearing of a slowly wandering speed (0.1 % of the tone)
     tol_abs = 0.6 * bin_hz
     tol_rel = 0.001
-    idx, close = _match(cand, orders, pk_f, tol_abs, tol_rel)
+    idx, close = _match_grid(cand, orders, pk_f, tol_abs, tol_rel)
     contrib = weights[None, :] * pk_ev[idx] * close
     score = contrib.sum(axis=1)
     # a shaft family without its fundamental (1X, or a forcing order at its
