@@ -458,99 +458,105 @@ def noise_threshold_db(n_averages: int, false_alarm_per_line: float = 1e-5) -> f
 
 
 def _drop_leakage_skirts(idx: np.ndarray, logp_db: np.ndarray, window: str, margin_db: float = 6.0) -> np.ndarray:
-    """Remove local maxima that lie within a stronger peak's leakage skirt."""
-    env = leakage_envelope_db(window)
+    """Remove local maxima that lie within a stronger peak's leakage skirt (strongest first)."""
+    env = leakage_envelope_db(window).tolist()
+    reach = len(env)  # a stronger peak's skirt is looked at up to reach − 1 lines away
     order = idx[np.argsort(-logp_db[idx])]
-    kept: list[int] = []
-    for k in order:
-        if kept:
-            arr = np.asarray(kept)
-            d = np.abs(arr - k)
-            near = d < env.size
-            if np.any(near) and np.any(logp_db[k] < logp_db[arr[near]] + env[d[near]] + margin_db):
-                continue
-        kept.append(int(k))
-    return np.sort(np.asarray(kept, dtype=int))
+    kept: dict[int, list[tuple[int, float]]] = {}  # kept peaks (line, level) by blocks of ``reach`` lines
+    for k, level in zip(order.tolist(), logp_db[order].tolist()):
+        b = k // reach
+        if any(abs(j - k) < reach and level < lj + env[abs(j - k)] + margin_db
+               for bb in (b - 1, b, b + 1) for j, lj in kept.get(bb, ())):
+            continue
+        kept.setdefault(b, []).append((k, level))
+    return np.sort(np.array([k for block in kept.values() for k, _ in block], dtype=int))
 
 
-def _interp_offset(power: np.ndarray, k: int, window: str) -> float:
-    """Fractional-line offset of a tone peaking at line ``k``.
+def _offsets(p_km: np.ndarray, p_k: np.ndarray, p_kp: np.ndarray, inner: np.ndarray, window: str) -> np.ndarray:
+    """Fractional-line offsets of tones peaking at lines of power ``p_k`` (neighbours ``p_km``, ``p_kp``).
 
     Hann: Grandke's two-line estimator δ = (2α−1)/(α+1), α = |X[k±1]|/|X[k]|
     (T. Grandke, IEEE Trans. Instrum. Meas. 32(2), 1983), exact for one tone
     apart from the leakage of the negative-frequency image. Other windows:
     parabola through the log amplitudes of three lines (quadratic
     interpolation; Smith & Serra 1987), bias below 0.1 line for flat-top.
+    0 where the line has no neighbour on both sides (``inner`` False) or no power.
     """
-    n = power.size
-    if k <= 0 or k >= n - 1:
-        return 0.0
-    a_km, a_k, a_kp = np.sqrt(power[k - 1 : k + 2])
-    if a_k <= 0:
-        return 0.0
-    if window == "hann":
-        if a_kp >= a_km:
-            alpha = a_kp / a_k
-            return float((2 * alpha - 1) / (alpha + 1))
-        alpha = a_km / a_k
-        return -float((2 * alpha - 1) / (alpha + 1))
-    lm, l0, lp = np.log(np.maximum([a_km, a_k, a_kp], 1e-300))
-    den = lm - 2 * l0 + lp
-    if den >= 0:
-        return 0.0
-    return float(np.clip(0.5 * (lm - lp) / den, -0.5, 0.5))
+    a_km, a_k, a_kp = np.sqrt(p_km), np.sqrt(p_k), np.sqrt(p_kp)
+    ok = inner & (a_k > 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if window == "hann":
+            up = a_kp >= a_km
+            alpha = np.where(up, a_kp, a_km) / a_k
+            delta = (2 * alpha - 1) / (alpha + 1)
+            delta = np.where(up, delta, -delta)
+        else:
+            lm, l0, lp = (np.log(np.maximum(a, 1e-300)) for a in (a_km, a_k, a_kp))
+            den = lm - 2 * l0 + lp
+            delta = np.clip(0.5 * (lm - lp) / den, -0.5, 0.5)
+            ok &= den < 0
+    return np.where(ok, delta, 0.0)
+
+
+def _tones(powers: np.ndarray, rows: np.ndarray, ks: np.ndarray, *, bin_width_hz: float, enbw_bins: float,
+           window: str, f_hz: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """(freq_hz, r.m.s.) of the tone peaking at line ``ks[i]`` of row ``rows[i]`` of ``powers`` (see tone_at).
+
+    ``f_hz`` (the lines' frequencies) for a velocity spectrum, whose lobe is
+    summed on acceleration and converted at the interpolated frequency.
+    """
+    n = powers.shape[1]
+    half = _LOBE_HALF_LINES.get(window, 2)
+    inner = (ks > 0) & (ks < n - 1)
+    km, kp = np.clip(ks - 1, 0, n - 1), np.clip(ks + 1, 0, n - 1)
+    f = (ks + _offsets(powers[rows, km], powers[rows, ks], powers[rows, kp], inner, window)) * bin_width_hz
+    # main-lobe sums, each as np.sum of its slice: whole lobes in one gather, lobes cut by an end one by one
+    lobe_sum = np.empty(ks.size)
+    whole = (ks >= half) & (ks + half < n)
+    lobe = ks[whole, None] + np.arange(-half, half + 1)
+    lines = powers[rows[whole, None], lobe]
+    if f_hz is not None:
+        lines = lines * (2 * np.pi * f_hz[lobe]) ** 2
+    lobe_sum[whole] = lines.sum(axis=1)
+    for i in np.flatnonzero(~whole):
+        lo, hi = max(0, int(ks[i]) - half), min(n, int(ks[i]) + half + 1)
+        part = powers[rows[i], lo:hi]
+        lobe_sum[i] = np.sum(part if f_hz is None else part * (2 * np.pi * f_hz[lo:hi]) ** 2)
+    if f_hz is None:
+        return f, np.sqrt(lobe_sum / enbw_bins)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return f, np.where(f > 0, np.sqrt(lobe_sum / enbw_bins) / (2 * np.pi * f), 0.0)
+
+
+def tones_at(spec: Spectrum, ks) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`tone_at` at each line of ``ks``, in one pass: (freq_hz, r.m.s. amplitude) arrays."""
+    ks = np.asarray(ks, dtype=np.intp).reshape(-1)
+    return _tones(spec.power[None, :], np.zeros_like(ks), ks, bin_width_hz=spec.bin_width_hz,
+                  enbw_bins=spec.enbw_bins, window=spec.window,
+                  f_hz=spec.f_hz if spec.quantity == "velocity" else None)
 
 
 def tone_at(spec: Spectrum, k: int) -> tuple[float, float]:
     """Interpolated (freq_hz, r.m.s. amplitude) of the tone peaking at line ``k``.
 
-    Amplitude is the power summed over the window's main lobe ÷ ENBW, which
-    removes the scalloping loss; for a velocity spectrum the sum is made on
-    acceleration and converted at the interpolated frequency.
+    Frequency from the fractional-line offset (Grandke's estimator for Hann,
+    a parabola on log amplitude otherwise). Amplitude is the power summed
+    over the window's main lobe ÷ ENBW, which removes the scalloping loss;
+    for a velocity spectrum the sum is made on acceleration and converted
+    at the interpolated frequency.
     """
-    n = spec.power.size
-    half = _LOBE_HALF_LINES.get(spec.window, 2)
-    lo, hi = max(0, k - half), min(n, k + half + 1)
-    delta = _interp_offset(spec.power, k, spec.window)
-    f = (k + delta) * spec.bin_width_hz
-    if spec.quantity == "velocity":
-        w = 2 * np.pi * spec.f_hz[lo:hi]
-        p_acc = np.sum(spec.power[lo:hi] * w**2)
-        amp = np.sqrt(p_acc / spec.enbw_bins) / (2 * np.pi * f) if f > 0 else 0.0
-    else:
-        amp = np.sqrt(spec.power[lo:hi].sum() / spec.enbw_bins)
-    return float(f), float(amp)
+    f, amp = tones_at(spec, [k])
+    return float(f[0]), float(amp[0])
 
 
 def tones_at_rows(
     powers: np.ndarray, ks: np.ndarray, *, bin_width_hz: float, enbw_bins: float, window: str = "hann"
 ) -> tuple[np.ndarray, np.ndarray]:
-    """:func:`tone_at` for acceleration power rows, line ``ks[i]`` of row *i*: (freq_hz, r.m.s. amplitude).
-
-    The same arithmetic as :func:`tone_at` on each row (Grandke's estimator,
-    main-lobe sum ÷ ENBW), for all rows at once. Hann window only.
-    """
-    if window != "hann":
-        raise ValueError(f"tones_at_rows reads Hann spectra only, got {window!r}")
+    """:func:`tone_at` for acceleration power rows, line ``ks[i]`` of row *i*: (freq_hz, r.m.s. amplitude)."""
     powers = np.asarray(powers, dtype=np.float64)
     ks = np.asarray(ks, dtype=np.intp)
-    n = powers.shape[1]
-    rows = np.arange(powers.shape[0])
-    inner = (ks > 0) & (ks < n - 1)
-    km, kp = np.clip(ks - 1, 0, n - 1), np.clip(ks + 1, 0, n - 1)
-    a_km, a_k, a_kp = np.sqrt(powers[rows, km]), np.sqrt(powers[rows, ks]), np.sqrt(powers[rows, kp])
-    with np.errstate(divide="ignore", invalid="ignore"):
-        up = a_kp >= a_km
-        alpha = np.where(up, a_kp, a_km) / a_k
-        delta = (2 * alpha - 1) / (alpha + 1)
-    delta = np.where(inner & (a_k > 0), np.where(up, delta, -delta), 0.0)
-    f = (ks + delta) * bin_width_hz
-    half = _LOBE_HALF_LINES[window]
-    lobe = 0.0  # the main lobe's lines summed in order, as np.sum does over a short slice
-    for d in range(-half, half + 1):
-        j = ks + d
-        lobe = lobe + np.where((j >= 0) & (j < n), powers[rows, np.clip(j, 0, n - 1)], 0.0)
-    return f, np.sqrt(lobe / enbw_bins)
+    return _tones(powers, np.arange(powers.shape[0]), ks, bin_width_hz=bin_width_hz, enbw_bins=enbw_bins,
+                  window=window)
 
 
 @functools.lru_cache(maxsize=8)
@@ -599,22 +605,18 @@ def find_peaks(
     tiny = 1e-300
     logp = 10 * np.log10(np.maximum(spec.power, tiny))
     logf = 10 * np.log10(np.maximum(floor, tiny))
-    idx, _ = signal.find_peaks(logp, distance=max(1, half))
+    # local maxima of a sampled curve lie at least 2 lines apart: a distance of 2 selects nothing more
+    idx, _ = signal.find_peaks(logp, distance=half) if half > 2 else signal.find_peaks(logp)
     fmax = spec.fmax_hz if fmax_hz is None else fmax_hz
     idx = idx[(spec.power[idx] > 0) & (floor[idx] > 0)]
     idx = idx[logp[idx] - logf[idx] >= min_height_db]
     idx = _drop_leakage_skirts(idx, logp, spec.window)
-    out = []
-    for k in idx:
-        if spec.power[k] <= 0 or floor[k] <= 0:
-            continue
-        h = logp[k] - logf[k]
-        if h < min_height_db:
-            continue
-        f, amp = tone_at(spec, int(k))
-        if f < fmin_hz or f > fmax:
-            continue
-        out.append(Peak(freq_hz=f, amp=amp, height_db=float(h), bin_idx=int(k)))
+    f, amp = tones_at(spec, idx)
+    height = logp[idx] - logf[idx]
+    out = [
+        Peak(freq_hz=float(f[i]), amp=float(amp[i]), height_db=float(height[i]), bin_idx=int(idx[i]))
+        for i in np.flatnonzero((f >= fmin_hz) & (f <= fmax))
+    ]
     out.sort(key=lambda p: -p.amp)
     if max_peaks is not None:
         out = out[:max_peaks]
