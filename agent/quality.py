@@ -268,15 +268,16 @@ def check_capture(
     peak = float(np.abs(x).max())
     # one sort gives the median, the distinct levels and the smallest step between them
     xs = np.sort(x)
-    median = float(np.median(xs))
+    mid = x.size // 2
+    median = float(xs[mid] if x.size % 2 else (xs[mid - 1] + xs[mid]) / 2.0)  # as np.median of the sorted samples
     figures.update(mean_ms2=mean, std_ms2=std, peak_ms2=peak, rms_ms2=math.sqrt(mean * mean + std * std))
 
     # flatline / dead channel
     repeat = float(np.mean(x[1:] == x[:-1]))
     gaps = np.diff(xs)
-    gaps = gaps[gaps > 0]  # the steps between consecutive distinct levels (as np.unique would give them)
-    distinct = int(gaps.size) + 1
-    step = float(gaps.min()) if distinct > 1 else 0.0  # quantisation step (or finer)
+    rises = gaps > 0  # the steps between consecutive distinct levels (as np.unique would give them)
+    distinct = int(np.count_nonzero(rises)) + 1
+    step = float(np.min(gaps, where=rises, initial=np.inf)) if distinct > 1 else 0.0  # quantisation step (or finer)
     figures.update(repeat_fraction=repeat)
     if distinct == 1:
         flag("flatline", "signal does not vary at all (dead channel)")
