@@ -440,7 +440,7 @@ def velocity_floor(vel: Spectrum, acc: Spectrum, acc_floor: np.ndarray, width_hz
     if tail >= n or np.any(power[start:] < tiny_v) or np.any(acc.power[start:] < tiny_a):
         return noise_floor(vel, width_hz)
     floor = np.zeros_like(power)
-    head = np.log10(power[start : min(n, start + 3 * half + 1)])
+    head = np.log10(power[start : start + 2 * half])  # all the head's median windows reach
     floor[start:tail] = 10.0 ** ndimage.median_filter(head, size=width_lines, mode="nearest")[:half]
     floor[tail:] = acc_floor[tail:] * 1e6  # mm/s from m/s
     return _to_velocity(floor, vel, weight)
