@@ -337,9 +337,9 @@ def velocity_spectrum(acc: Spectrum, f_low_hz: float) -> Spectrum:
     f = acc.f_hz
     power = np.zeros_like(acc.power)
     keep = f >= f_low_hz
-    first = int(np.argmax(keep))
-    if keep[first:].all():  # ascending lines (every spectrum here): one slice, no scatter
-        keep = slice(first, None) if keep[first] else slice(0, 0)
+    n_low = int(np.count_nonzero(~keep))
+    if not keep[:n_low].any():  # ascending lines (every spectrum here): the kept ones are one slice
+        keep = slice(n_low, None)
     power[keep] = acc.power[keep] / (2.0 * np.pi * f[keep]) ** 2 * 1e6
     return Spectrum(
         f_hz=f,
