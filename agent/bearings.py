@@ -66,7 +66,7 @@ from scipy import ndimage
 from agent.envelope import EnvelopeSpectrum, envelope_spectrum
 from agent.kinematics import BearingSpec, bearing_orders, train_from_config
 from agent.model import Finding, Severity
-from agent.spectra import Spectrum, SpectrumPlan, accel_spectrum, noise_floor, velocity_spectrum
+from agent.spectra import CaptureSpectra, Spectrum, SpectrumPlan, accel_spectrum, noise_floor, velocity_spectrum
 
 #: finding codes, one per defect
 CODES = {
@@ -504,12 +504,14 @@ def diagnose_bearings(
     settings: BearingSettings = BearingSettings(),
     *,
     floor_rise_db: float | None = None,
+    spectra: CaptureSpectra | None = None,
 ) -> tuple[Finding, ...]:
     """Bearing findings for one capture (one finding per bearing at most).
 
     ``accel_ms2`` may be angle-resampled (``fs_hz`` then in samples per
     revolution and ``speed_hz`` = 1). With no bearings configured, returns
-    :func:`unassigned_tones` findings instead.
+    :func:`unassigned_tones` findings instead. ``spectra``: the same samples'
+    :class:`agent.spectra.CaptureSpectra`, to share the acceleration spectrum.
     """
     x = np.asarray(accel_ms2, dtype=np.float64)
     if not speed_hz > 0:
@@ -527,7 +529,8 @@ def diagnose_bearings(
     vel = None
     if x.size >= 256:
         plan = SpectrumPlan.build(fs_hz, x.size, lines=min(1 << 14, x.size // 4))
-        vel = velocity_spectrum(accel_spectrum(x, plan), f_low_hz=max(0.3 * speed_hz, plan.bin_width_hz))
+        acc = accel_spectrum(x, plan) if spectra is None else spectra.of_samples(x).accel(plan)
+        vel = velocity_spectrum(acc, f_low_hz=max(0.3 * speed_hz, plan.bin_width_hz))
     findings = []
     heights: dict = {}  # line heights per view, shared by the bearings (the views live until we return)
     all_scores = [score_bearing(b, views, speed_hz, settings, heights) for b in bearings]
@@ -718,6 +721,7 @@ def bearing_findings(
     analysis,
     *,
     angle_domain_speed_hz: float | None = None,
+    spectra: CaptureSpectra | None = None,
 ) -> tuple[Finding, ...]:
     """The pipeline's bearing stage: findings for one capture from the config sections.
 
@@ -728,7 +732,8 @@ def bearing_findings(
     shaft's speed. For a capture re-sampled to shaft
     angle pass ``fs_hz`` = samples per revolution, ``speed_hz`` = 1 and the
     mean speed as ``angle_domain_speed_hz``: evidence is then given in Hz at
-    that speed, with its order.
+    that speed, with its order. ``spectra``: the same samples'
+    :class:`agent.spectra.CaptureSpectra`, to share the acceleration spectrum.
     """
     if not speed_hz or speed_hz <= 0:
         return ()
@@ -736,7 +741,7 @@ def bearing_findings(
     groups = specs_by_shaft(machine) if machine.bearings else {"": (1.0, ())}
     found: tuple[Finding, ...] = ()
     for ratio, specs in groups.values():
-        found += diagnose_bearings(accel_ms2, fs_hz, speed_hz * ratio, specs, settings)
+        found += diagnose_bearings(accel_ms2, fs_hz, speed_hz * ratio, specs, settings, spectra=spectra)
     if angle_domain_speed_hz:
         k = float(angle_domain_speed_hz)
         found = tuple(

@@ -29,6 +29,7 @@ from agent.baseline import Baselines
 from agent.config import AgentConfig
 from agent.model import Capture, Finding, MachineState, Severity
 from agent.pipeline import Analysis, analyse_capture, analysis_to_json
+from agent.spectra import CaptureSpectra
 from agent.speed import SpeedEstimate
 
 SCHEMA = 1
@@ -156,15 +157,16 @@ def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConf
     """Judge one capture (one per channel); return the result and the state to carry on."""
     if not captures:
         raise ValueError("monitor_step needs at least one capture")
-    failed = _quality_failures(captures, cfg)
+    cap = captures[0]
+    spectra = CaptureSpectra.of(cap)  # computed once, shared by the quality gate and the analysis
+    failed = _quality_failures(captures, cfg, spectra)
     if failed:
         return quality_fault_step(ms, captures, failed)
-    cap = captures[0]
     t = cap.t0_utc_s
     previous = None
     if ms.last_speed_hz:
         previous = SpeedEstimate(speed_hz=ms.last_speed_hz, confidence=1.0, found=True)
-    analysis = analyse_capture(cap, cfg, previous_speed=previous)
+    analysis = analyse_capture(cap, cfg, previous_speed=previous, spectra=spectra)
     speed = analysis.speed.speed if analysis.speed is not None else None
     speed_hz = speed.speed_hz if speed is not None and speed.found else None
     engine = ms.engine if ms.engine is not None else EngineState()
@@ -222,13 +224,15 @@ def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConf
     return result, new_ms
 
 
-def _quality_failures(captures: tuple[Capture, ...], cfg: AgentConfig) -> list[tuple[Capture, Any]]:
+def _quality_failures(captures: tuple[Capture, ...], cfg: AgentConfig,
+                      first: CaptureSpectra | None = None) -> list[tuple[Capture, Any]]:
+    """Captures that fail the quality gate, with their verdicts; ``first``: the first capture's spectra."""
     from agent.quality import check_capture, limits_from_config
 
     limits = limits_from_config(cfg)
     out = []
-    for c in captures:
-        v = check_capture(c, limits)
+    for i, c in enumerate(captures):
+        v = check_capture(c, limits, spectra=first if i == 0 else None)
         if not v.ok:
             out.append((c, v))
     return out
