@@ -11,7 +11,19 @@ Severity is the worst of three views:
   ratio to its baseline — at or above ``alert_ratio`` → alert, at or above
   ``danger_ratio`` → danger, above 1.5× → watch (ratio practice: alert ≈ 2×
   baseline, danger ≈ 2.5-4×, common practice);
-* **fault stage** (bearings): 1-2 → watch, 3 → alert, 4 → danger.
+* **fault stage** (bearings): 1-2 → watch, 3 → alert, 4 → danger;
+* **floor excess** (a finding that rests on a raised broadband floor,
+  cavitation: ``extra["floor_excess_db"]``, how far the floor stands beyond
+  the level at which the rule is sure): at or above 0 dB → watch, at or
+  above 12 dB (×4 in amplitude, as the danger ratio) → alert. Such a finding
+  is not graded on the overall velocity zone: the floor lies above the
+  velocity band.
+
+Persistence (:func:`persisting`, applied by the monitor across captures):
+some findings do their harm while they last — cavitation erodes the
+impeller, so cavitation shown for 6 h without a break is raised to alert
+(act within days), whatever its strength (our own rule, after the common
+advice to act on cavitation that persists).
 
 A finding of low confidence (below 0.4) is held at watch at most: the agent
 does not raise an alarm on a guess. Urgency follows severity: danger →
@@ -37,6 +49,12 @@ ZONE_SEVERITY = {"A": Severity.INFO, "B": Severity.WATCH, "C": Severity.ALERT, "
 STAGE_SEVERITY = {1: Severity.WATCH, 2: Severity.WATCH, 3: Severity.ALERT, 4: Severity.DANGER}
 #: below this confidence a finding is held at watch at most
 GUESS_CONFIDENCE = 0.4
+#: floor excess (dB beyond the rule's sure level) from which a floor finding is an alert (×4, as danger_ratio)
+FLOOR_EXCESS_ALERT_DB = 12.0
+#: findings that harm while they last: shown this long without a break (s) → at least this severity
+PERSISTENCE: dict[str, tuple[float, Severity]] = {"cavitation": (6 * 3600.0, Severity.ALERT)}
+#: a spell of a persisting finding ends after this many captures in a row without it
+PERSISTENCE_MISSES = 2
 
 #: what to do, per finding code (our own wording); {urgency} is filled in
 ACTIONS: dict[str, str] = {
@@ -103,6 +121,12 @@ def severity_of(
         zone = iso_zone(float(own), iso_group, support)
         sev = max(sev, ZONE_SEVERITY[zone])
         why.append(f"its components reach {float(own):.2f} mm/s r.m.s. (ISO 20816-3 zone {zone} level)")
+    elif f.extra.get("floor_excess_db") is not None:
+        # graded on its own evidence: how far the broadband floor stands beyond the rule's sure level
+        ex = float(f.extra["floor_excess_db"])
+        sev = max(sev, Severity.ALERT if ex >= FLOOR_EXCESS_ALERT_DB else Severity.WATCH if ex >= 0 else Severity.INFO)
+        why.append(f"its high-frequency floor stands {ex:+.1f} dB from the level at which the pattern is sure"
+                   + (f" (alert from {FLOOR_EXCESS_ALERT_DB:+.0f} dB)" if ex < FLOOR_EXCESS_ALERT_DB else ""))
     elif vel_rms_mm_s is not None and f.stage is None:
         # no level of its own (e.g. a high-frequency floor): the overall zone, but not above alert
         zone = iso_zone(vel_rms_mm_s, iso_group, support)
@@ -156,4 +180,37 @@ def advise(
     return tuple(out)
 
 
-__all__ = ["ACTIONS", "URGENCY", "URGENCY_TEXT", "WHY", "advise", "severity_of"]
+def persisting(
+    findings: Sequence[Finding], shown: set[str], spells: tuple[tuple[str, float, int], ...], t_utc_s: float,
+) -> tuple[tuple[Finding, ...], tuple[tuple[str, float, int], ...]]:
+    """Raise findings that have lasted (:data:`PERSISTENCE`); returns them and the spells to carry on.
+
+    ``shown`` are the codes the operator is shown in this capture; a spell
+    ``(code, since_utc_s, misses)`` starts when a code of :data:`PERSISTENCE`
+    is shown and ends after :data:`PERSISTENCE_MISSES` captures in a row
+    without it (one capture that misses it does not restart the clock).
+    """
+    known = {code: (since, misses) for code, since, misses in spells}
+    out_spells = []
+    for code in sorted(PERSISTENCE):
+        if code in shown:
+            since = known[code][0] if code in known else t_utc_s
+            out_spells.append((code, since, 0))
+        elif code in known and known[code][1] + 1 < PERSISTENCE_MISSES:
+            out_spells.append((code, known[code][0], known[code][1] + 1))
+    lasting = {code: since for code, since, misses in out_spells if misses == 0}
+    out = []
+    for f in findings:
+        rule = PERSISTENCE.get(f.code)
+        if rule is not None and f.code in lasting and t_utc_s - lasting[f.code] >= rule[0] and f.severity < rule[1]:
+            hours = (t_utc_s - lasting[f.code]) / 3600.0
+            urgency = URGENCY[rule[1]]
+            why = f.extra.get("why", "")
+            why += ("; " if why else "") + f"shown for {hours:.1f} h without a break (raised at {rule[0] / 3600:g} h)"
+            f = replace(f, severity=rule[1], urgency=urgency, action=ACTIONS.get(f.code, f.action),
+                        extra={**f.extra, "why": why, "urgency_text": URGENCY_TEXT[urgency]})
+        out.append(f)
+    return tuple(out), tuple(out_spells)
+
+
+__all__ = ["ACTIONS", "PERSISTENCE", "URGENCY", "URGENCY_TEXT", "WHY", "advise", "persisting", "severity_of"]

@@ -41,7 +41,12 @@ Alarm logic per feature (OPC UA Part 9 B.1.5 on-delay/deadband ideas)
   of the newest three above the median of the oldest three by a factor of at
   least max(``rate_ratio``, exp(k·σ·√2)), and above the baseline median,
   counts as an alert exceedance;
-* latch: with ``latch`` on, a raised level stays shown until acknowledged.
+* latch: with ``latch`` on, a raised level stays shown until acknowledged;
+* stop: when the machine stops, every feature's live level, persistence
+  count and history restart (a latched level stays), so the first captures
+  after a restart — a start-up transient, or a repaired machine — are not
+  shown at the alarm level from before the stop; a fault still there is
+  raised again by the usual N of M judged captures.
 
 The machine state is the worst feature state (alert/danger), else normal,
 or learning while the operating state has no finished baseline; sensor_fault
@@ -430,6 +435,17 @@ def step(
     elif op.mode == STOPPED:
         machine, reason, new_op = MachineState.STOPPED, f"machine stopped ({op.reason})", op
         history_key = ""
+        # nothing is judged while stopped, and what runs after a stop (a repair, a start-up) is
+        # judged afresh: each feature's live alarm restarts (on-delay and hysteresis count again);
+        # a latched alarm stays shown until acknowledged
+        for name, fa in engine.features.items():
+            fresh = FeatureAlarm(latched=fa.latched)
+            if fresh != fa:
+                feats[name] = fresh
+                if fresh.shown(cfg) != fa.shown(cfg):
+                    events.append(AlarmEvent(t_utc_s, "feature", LEVEL_NAMES[fa.shown(cfg)],
+                                             LEVEL_NAMES[fresh.shown(cfg)], name, None, None,
+                                             "machine stopped: judged afresh when it runs again"))
     else:
         new_op = op
         sb = baselines.get(op.key) if op.key else None

@@ -44,6 +44,11 @@ where so marked), stated here:
   harmonic number) wins, its lines are set aside and the others re-scored,
   so that no family borrows another's lines through a slip-shifted
   fundamental (the 3rd BSF harmonic lies 1.4 % from 2×BPFO on a 6205);
+* bearings compete the same way (:func:`diagnose_bearings`): the bearing
+  whose leading family is strongest keeps its lines once it is called; the
+  others are re-scored with those lines set to the floor, so one defect is
+  not reported again on a second bearing whose tones happen to meet its
+  harmonics (on the demo skid 2 × motor BPFI lies 1 % from 3 × pump BPFO);
 * stage (common practice): 1 defect only in the envelope; 2 a defect tone
   also in the velocity spectrum; 3 harmonics there and, for inner race and
   rolling element, sidebands; 4 broadband floor raised (needs a baseline:
@@ -61,7 +66,7 @@ from scipy import ndimage
 from agent.envelope import EnvelopeSpectrum, envelope_from_spectrum, envelope_spectrum, signal_spectrum
 from agent.kinematics import BearingSpec, bearing_orders, train_from_config
 from agent.model import Finding, Severity
-from agent.spectra import Spectrum, SpectrumPlan, accel_spectrum, noise_floor, velocity_spectrum
+from agent.spectra import CaptureSpectra, Spectrum, SpectrumPlan, accel_spectrum, noise_floor, velocity_spectrum
 
 #: finding codes, one per defect
 CODES = {
@@ -533,18 +538,22 @@ def _lines_searched(ses: EnvelopeSpectrum, top_order: float, speed_hz: float, se
     return min(ses.f_hz.size, int(1.01 * f_top_hz / ses.bin_width_hz) + 2 * settings.n_harmonics + 8)
 
 
-def _family_mask(f_hz: np.ndarray, win: DefectScore, speed_hz: float, ftf_hz: float) -> np.ndarray:
-    """Lines of a winning family: all harmonics of its fundamental and their sidebands."""
+def _family_mask(f_hz: np.ndarray, win: DefectScore, speed_hz: float, ftf_hz: float, *, rel_half: float = 0.003,
+                 top_hz: float | None = None, max_half_hz: float = np.inf) -> np.ndarray:
+    """Lines of a winning family: all harmonics of its fundamental (up to ``top_hz``) and their sidebands.
+
+    Each line ± max(2.5 lines, ``rel_half`` × its frequency), at most ± ``max_half_hz``.
+    """
     df = float(f_hz[1] - f_hz[0])
     f0 = win.fundamental_hz
-    ks = np.arange(1, int(f_hz[-1] / f0) + 1)
+    ks = np.arange(1, int(min(f_hz[-1], top_hz or np.inf) / f0) + 1)
     centres = [ks * f0]
     spacing = speed_hz if win.defect == "inner" else ftf_hz if win.defect == "ball" else 0.0
     if spacing:
         centres += [ks * f0 - spacing, ks * f0 + spacing]
     c = np.concatenate(centres)
     c = c[(c > 0) & (c < f_hz[-1])]
-    half = np.maximum(2.5 * df, 0.003 * c)
+    half = np.minimum(np.maximum(2.5 * df, rel_half * c), max_half_hz)
     lo = np.clip(np.floor((c - half) / df).astype(int), 0, f_hz.size)
     hi = np.clip(np.ceil((c + half) / df).astype(int) + 1, 0, f_hz.size)
     # lines [lo, hi) of every centre: +1 at each start, −1 at each end; covered where the running sum is > 0
@@ -593,15 +602,18 @@ def _spectrum_stage(
 
 
 def _staging_lines(
-    accel_ms2: np.ndarray, fs_hz: float, speed_hz: float, settings: BearingSettings
+    accel_ms2: np.ndarray, fs_hz: float, speed_hz: float, settings: BearingSettings,
+    spectra: CaptureSpectra | None = None,
 ) -> tuple[Spectrum, np.ndarray] | None:
     """The velocity spectrum (up to 16 384 lines) a finding's stage is judged on, and its lines' height
     above the noise floor, dB (shaft and supply harmonics set to 0). None below 256 samples.
+    ``spectra``: the capture's shared spectra (the acceleration spectrum is then not recomputed).
     """
     if accel_ms2.size < 256:
         return None
     plan = SpectrumPlan.build(fs_hz, accel_ms2.size, lines=min(1 << 14, accel_ms2.size // 4))
-    vel = velocity_spectrum(accel_spectrum(accel_ms2, plan), f_low_hz=max(0.3 * speed_hz, plan.bin_width_hz))
+    acc = accel_spectrum(accel_ms2, plan) if spectra is None else spectra.of_samples(accel_ms2).accel(plan)
+    vel = velocity_spectrum(acc, f_low_hz=max(0.3 * speed_hz, plan.bin_width_hz))
     logp = 10 * np.log10(np.maximum(vel.power, 1e-300))
     h = logp - 10 * np.log10(np.maximum(noise_floor(vel), 1e-300))
     # shaft harmonics are not bearing tones, even where they fall on one
@@ -616,12 +628,14 @@ def diagnose_bearings(
     settings: BearingSettings = BearingSettings(),
     *,
     floor_rise_db: float | None = None,
+    spectra: CaptureSpectra | None = None,
 ) -> tuple[Finding, ...]:
     """Bearing findings for one capture (one finding per bearing at most).
 
     ``accel_ms2`` may be angle-resampled (``fs_hz`` then in samples per
     revolution and ``speed_hz`` = 1). With no bearings configured, returns
-    :func:`unassigned_tones` findings instead.
+    :func:`unassigned_tones` findings instead. ``spectra``: the same samples'
+    :class:`agent.spectra.CaptureSpectra`, to share the acceleration spectrum.
     """
     x = np.asarray(accel_ms2, dtype=np.float64)
     if not speed_hz > 0:
@@ -639,13 +653,28 @@ def diagnose_bearings(
     staging = None  # the velocity spectrum's lines for staging, made when a finding first needs them
     findings = []
     heights: dict = {}  # line heights per view, shared by the bearings (the views live until we return)
-    for b in bearings:
-        scores = score_bearing(b, views, speed_hz, settings, heights)
+    all_scores = [score_bearing(b, views, speed_hz, settings, heights) for b in bearings]
+    # explain away across bearings: the lines of a called family are its own; a weaker family of
+    # another bearing is re-scored without them (harmonics of different bearings' tones can meet:
+    # 2 × 4.96X lies 1 % from 3 × 3.25X, within a smoothed view's reach)
+    order = sorted(range(len(bearings)), key=lambda i: _top_strength(all_scores[i]), reverse=True)
+    claims: list[np.ndarray] | None = None
+    for n, i in enumerate(order):
+        if claims is not None and next(iter(all_scores[i].values())).confidence >= settings.report_confidence:
+            kept = tuple(_lines_at_floor(ses, c, max(0.5 * speed_hz, 10 * ses.bin_width_hz))
+                         for ses, c in zip(views, claims))
+            all_scores[i] = score_bearing(bearings[i], kept, speed_hz, settings, {})
+        win = next(iter(all_scores[i].values()))
+        if win.confidence >= settings.call_confidence and n + 1 < len(order):
+            own = [_claimed_lines(ses.f_hz, win, speed_hz, bearings[i].orders.ftf * speed_hz, max_defect, settings)
+                   for ses in views]
+            claims = own if claims is None else [c | m for c, m in zip(claims, own)]
+    for b, scores in zip(bearings, all_scores):
         top = next(iter(scores.values()))  # the family that explains most
         if top.confidence < settings.report_confidence:
             continue
         if staging is None:
-            staging = _staging_lines(x, fs_hz, speed_hz, settings)
+            staging = _staging_lines(x, fs_hz, speed_hz, settings, spectra)
         stage, vel_ev = _spectrum_stage(top, staging, speed_hz, b.orders.ftf * speed_hz, settings, floor_rise_db)
         others = {d: round(s.confidence, 3) for d, s in scores.items()}
         called = top.confidence >= settings.call_confidence
@@ -664,6 +693,47 @@ def diagnose_bearings(
             )
         )
     return tuple(findings)
+
+
+def _top_strength(scores: dict[str, DefectScore]) -> tuple[float, float]:
+    """(rank, score) of a bearing's leading family: the order in which bearings claim their lines."""
+    top = next(iter(scores.values()))
+    return top.rank, top.score
+
+
+def _claimed_lines(f_hz: np.ndarray, win: DefectScore, speed_hz: float, ftf_hz: float, max_defect_hz: float,
+                   settings: BearingSettings) -> np.ndarray:
+    """Lines a called family keeps from the other bearings: its harmonics and their sidebands, with their skirts.
+
+    Each line is claimed ± half the slip tolerance (1 % by default) of its
+    frequency, the spread random slip gives a defect tone (Randall & Antoni
+    2011, §2.1), at least ± 2.5 lines and at most ± a quarter of the
+    fundamental; harmonics are claimed up to ``n_harmonics`` + 1 times the
+    fastest defect tone searched, beyond which no family is scored.
+    """
+    return _family_mask(f_hz, win, speed_hz, ftf_hz, rel_half=0.5 * settings.slip_tol,
+                        top_hz=(settings.n_harmonics + 1) * max_defect_hz, max_half_hz=0.25 * win.fundamental_hz)
+
+
+def _lines_at_floor(ses: EnvelopeSpectrum, mask: np.ndarray, width_hz: float) -> EnvelopeSpectrum:
+    """``ses`` with the ``mask``-ed lines set to the median of the unmasked lines within ± ``width_hz``.
+
+    The lines a stronger family claimed then read as floor (height about 0 dB)
+    in the sharp and in the smoothed views alike; the median floor of the
+    other lines is left as it was (zeros would pull it down).
+    """
+    idx = np.flatnonzero(mask)
+    if idx.size == 0:
+        return ses
+    a = np.array(ses.amplitude)
+    src = ses.amplitude
+    w = max(15, int(round(width_hz / ses.bin_width_hz)))
+    cut = np.flatnonzero(np.diff(idx) > 1)
+    for lo, hi in zip(np.r_[idx[0], idx[cut + 1]], np.r_[idx[cut], idx[-1]] + 1):
+        a0, b0 = max(0, lo - w), min(a.size, hi + w)
+        near = src[a0:b0][~mask[a0:b0]]
+        a[lo:hi] = float(np.median(near)) if near.size else 0.0
+    return replace(ses, amplitude=a)
 
 
 def _title(name: str, defect: str, called: bool, f0_hz: float, order: float, stage: int) -> str:
@@ -773,6 +843,7 @@ def bearing_findings(
     analysis,
     *,
     angle_domain_speed_hz: float | None = None,
+    spectra: CaptureSpectra | None = None,
 ) -> tuple[Finding, ...]:
     """The pipeline's bearing stage: findings for one capture from the config sections.
 
@@ -783,7 +854,8 @@ def bearing_findings(
     shaft's speed. For a capture re-sampled to shaft
     angle pass ``fs_hz`` = samples per revolution, ``speed_hz`` = 1 and the
     mean speed as ``angle_domain_speed_hz``: evidence is then given in Hz at
-    that speed, with its order.
+    that speed, with its order. ``spectra``: the same samples'
+    :class:`agent.spectra.CaptureSpectra`, to share the acceleration spectrum.
     """
     if not speed_hz or speed_hz <= 0:
         return ()
@@ -791,7 +863,7 @@ def bearing_findings(
     groups = specs_by_shaft(machine) if machine.bearings else {"": (1.0, ())}
     found: tuple[Finding, ...] = ()
     for ratio, specs in groups.values():
-        found += diagnose_bearings(accel_ms2, fs_hz, speed_hz * ratio, specs, settings)
+        found += diagnose_bearings(accel_ms2, fs_hz, speed_hz * ratio, specs, settings, spectra=spectra)
     if angle_domain_speed_hz:
         k = float(angle_domain_speed_hz)
         found = tuple(

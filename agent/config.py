@@ -558,6 +558,39 @@ def summary(cfg: AgentConfig) -> str:
     return "\n".join(lines)
 
 
+
+def changed_keys(old: AgentConfig, new: AgentConfig) -> tuple[str, ...]:
+    """Dotted keys whose values differ (``"mqtt.host"``, ``"source.synthetic.seed"``), in
+    schema order; a list of tables (``machine.bearings``) counts as one key."""
+    keys: list[str] = []
+
+    def walk(a: Any, b: Any, prefix: str) -> None:
+        for f in dataclasses.fields(a):
+            if f.metadata.get("internal"):
+                continue
+            x, y = getattr(a, f.name), getattr(b, f.name)
+            if dataclasses.is_dataclass(x):
+                walk(x, y, f"{prefix}{f.name}.")
+            elif x != y:
+                keys.append(prefix + f.name)
+
+    walk(old, new, "")
+    return tuple(keys)
+
+
+def with_keys_from(cfg: AgentConfig, source: AgentConfig, keys: typing.Iterable[str]) -> AgentConfig:
+    """``cfg`` with each dotted key of ``keys`` set to its value in ``source``."""
+
+    def put(obj: Any, src: Any, names: list[str]) -> Any:
+        head, rest = names[0], names[1:]
+        value = put(getattr(obj, head), getattr(src, head), rest) if rest else getattr(src, head)
+        return dataclasses.replace(obj, **{head: value})
+
+    for key in keys:
+        cfg = put(cfg, source, key.split("."))
+    return cfg
+
+
 __all__ = [
     "AgentConfig",
     "AnalysisConfig",
@@ -574,10 +607,12 @@ __all__ = [
     "SensorConfig",
     "SourceConfig",
     "StoreConfig",
+    "changed_keys",
     "default_config",
     "iso_band_hz",
     "load_config",
     "parse_config",
     "resolve_path",
     "summary",
+    "with_keys_from",
 ]

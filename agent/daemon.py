@@ -11,7 +11,8 @@ Threads
   queues MQTT messages into the durable outbox, answers remote requests,
   feeds the service watchdog only when real progress was made, and handles
   SIGTERM/SIGINT (stop: finish the current write, flush, publish offline)
-  and SIGHUP (reload the config; an invalid one is rejected, the old kept).
+  and SIGHUP (reload the config; an invalid one is rejected, the old kept;
+  see :meth:`Daemon._reload` for what applies live and what needs a restart).
 * **MQTT** — paho's network thread and the link's sender (agent/mqtt.py).
 
 Error policy: a ``ConfigError`` at start stops with exit code 2; any other
@@ -36,7 +37,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable
 
-from agent.config import AgentConfig, load_config, resolve_path
+from agent.config import AgentConfig, changed_keys, load_config, with_keys_from
 from agent.errors import AgentError, ConfigError, SourceError, StoreError
 from agent.model import Capture, MachineState
 from agent.monitor import CaptureResult, MonitorState, initial_state, monitor_step, source_problem_step
@@ -82,6 +83,7 @@ class Health:
     clock_jumps: int = 0
     last_error: str = ""
     storage_problem: str = ""  # the last store/outbox write failure; "" once writes succeed again
+    restart_needed_keys: tuple[str, ...] = ()  # changed config keys a reload could not apply
     last_capture_utc_s: float = 0.0
     extra: dict = field(default_factory=dict)
 
@@ -100,6 +102,8 @@ class Health:
             "last_capture_utc_s": self.last_capture_utc_s,
             "last_error": self.last_error,
             "storage_problem": self.storage_problem,
+            "restart_needed": bool(self.restart_needed_keys),
+            "restart_needed_keys": list(self.restart_needed_keys),
             **self.extra,
         }
 
@@ -219,6 +223,7 @@ class Daemon:
         self.source_factory = source_factory
         self.mono, self.wall = mono, wall
         self.max_captures = max_captures
+        self.mqtt_from_config = use_mqtt is None  # else forced on or off (tests, --no-mqtt)
         self.use_mqtt = cfg.mqtt.enabled if use_mqtt is None else use_mqtt
         self.health = Health(started_mono_s=mono())
         self.stop_event = threading.Event()
@@ -246,12 +251,8 @@ class Daemon:
     def _open_edges(self) -> None:
         from agent.store import Store
 
-        state_dir = resolve_path(self.cfg, self.cfg.store.state_dir)
-        st = self.cfg.store
-        self.store = Store(state_dir, max_count=st.snapshot_max_count, max_bytes=int(st.snapshot_max_mb * 1024 * 1024),
-                           raw_keep_s=st.trend_raw_days * 86400.0, hourly_keep_s=st.trend_hourly_days * 86400.0,
-                           clock=self.wall)
-        self._restore_state(state_dir)
+        self.store = Store.from_config(self.cfg, clock=self.wall)
+        self._restore_state(self.store.state_dir)
         if self.use_mqtt:
             self._open_mqtt()
 
@@ -286,6 +287,7 @@ class Daemon:
                 reason=str(doc.get("reason", "")),
                 mode=str(doc.get("mode", "monitor")),
                 finding_codes=tuple(doc.get("finding_codes", ())),
+                finding_spells=tuple((str(c), float(t), int(m)) for c, t, m in doc.get("finding_spells", ())),
             )
             alarm_id = doc.get("open_alarm_id")
             if isinstance(alarm_id, str) and self.ms.state in BAD_STATES:
@@ -425,6 +427,8 @@ class Daemon:
         return sid
 
     def _publish(self, result: CaptureResult, snapshot_id: str) -> None:
+        """One capture's messages (state if it changed, measurements, events, findings),
+        queued in one outbox transaction: one disk sync, all or none."""
         if self.link is None:
             return
         from agent import mqtt as m
@@ -432,34 +436,52 @@ class Daemon:
 
         t = result.t_utc_s
         mode = self.ms.mode
+        out: list[m.Outgoing] = []
         try:
             shown = (result.state, result.reason, mode)
             if shown != self.last_state_published:
                 self.last_state_published = shown
-                self.link.send("state", m.state_payload(result.state, result.since_utc_s, result.reason, result.action,
-                                                        result.urgency, t_utc_s=t, mode=mode),
-                               kind=Kind.KEPT, retain=True, replace_key="state")
+                out.append(m.Outgoing("state", m.state_payload(
+                    result.state, result.since_utc_s, result.reason, result.action, result.urgency,
+                    t_utc_s=t, mode=mode), Kind.KEPT, retain=True, replace_key="state"))
             values = {k: v for k, v in result.features.items() if k.endswith(m.UNIT_SUFFIXES) or k in m.DIMENSIONLESS}
             if result.speed_hz:
                 values["speed_hz"] = result.speed_hz
                 values["speed_rpm"] = result.speed_hz * 60.0
             if values:
-                self.link.send("measurements", m.measurements_payload(values, t_utc_s=t, capture_seq=result.seq,
-                                                                      state=result.state), kind=Kind.PERIODIC)
+                out.append(m.Outgoing("measurements", m.measurements_payload(
+                    values, t_utc_s=t, capture_seq=result.seq, state=result.state), Kind.PERIODIC))
             for ev in result.events:
-                self.link.send("events", m.event_payload(
+                out.append(m.Outgoing("events", m.event_payload(
                     ev["event"], t_utc_s=t, state=result.state, previous_state=ev.get("previous_state", ""),
                     severity=ev.get("severity", ""), title=ev.get("title", ev.get("reason", "")),
-                    finding_code=ev.get("code", ""), snapshot_id=snapshot_id, detail=ev), kind=Kind.KEPT)
+                    finding_code=ev.get("code", ""), snapshot_id=snapshot_id, detail=ev), Kind.KEPT))
             if result.events:
-                self.link.send("findings", m.findings_payload(result.findings, t_utc_s=t, state=result.state),
-                               kind=Kind.KEPT, retain=True, replace_key="findings")
+                out.append(m.Outgoing("findings", m.findings_payload(result.findings, t_utc_s=t, state=result.state),
+                                      Kind.KEPT, retain=True, replace_key="findings"))
+            if out:
+                self._send_capture(out)
         except (AgentError, ValueError) as exc:
             self.health.publish_errors += 1
             self.health.last_error = str(exc)
             if isinstance(exc, StoreError):  # the outbox could not write
                 self.health.storage_problem = str(exc)
             log_event("publish_error", "warning", error=str(exc))
+
+    def _send_capture(self, out: list) -> None:
+        """Queue ``out`` together; if one of them can never be queued (``ValueError``: larger
+        than a quarter of the outbox) queue the others one by one, then raise for it."""
+        try:
+            self.link.send_many(out)
+            return
+        except ValueError as exc:
+            bad = exc
+        for o in out:
+            try:
+                self.link.send_many([o])
+            except ValueError as exc:
+                bad = exc
+        raise bad
 
     def _publish_health(self, now_mono: float) -> None:
         if self.link is None or now_mono < self.next_health_mono:
@@ -473,7 +495,11 @@ class Daemon:
             st = self.link.outbox.stats()
             extra["outbox_depth_count"] = st.depth
             extra["outbox_bytes_count"] = st.bytes
+            extra["outbox_shed_periodic_count"] = st.shed_periodic
+            extra["outbox_shed_kept_count"] = st.shed_kept
+            extra["outbox_dropped_new_count"] = st.dropped_new
             extra["outbox_bypassed_count"] = self.link.counters.get("outbox_bypassed", 0)
+            extra["mqtt_rejected_count"] = self.link.counters.get("rejected", 0)
             du = self.store.disk_usage()
             # the daemon counts store errors and snapshots itself; keep the store's figures apart
             extra.update({("stored_" + k if k.startswith("snapshots_") else k): v for k, v in du.items()
@@ -593,6 +619,16 @@ class Daemon:
         return True
 
     def _reload(self) -> None:
+        """SIGHUP: read the config again and apply what can change while running.
+
+        Live: source (acquisition restarts), sensor, machine, analysis, baseline, alarms
+        (the next capture uses them), asset name and description, the store's retention,
+        snapshot schedule and health period, and ``mqtt.outbox_max_mb``. Read only at
+        start: ``store.state_dir``, the rest of ``[mqtt]`` and, with MQTT on, the asset
+        tag and site (they name the topic tree). Those keep their running values; they
+        are named in one warning line, in health (``restart_needed_keys``) and in the
+        service status until a restart, or until a reload puts them back.
+        """
         self.reload_event.clear()
         try:
             new = load_config(self.cfg.path)
@@ -602,11 +638,54 @@ class Daemon:
             log_event("reload_rejected", "error", problems="; ".join(exc.problems))
             return
         self.health.reloads += 1
-        changed_source = new.source != self.cfg.source
-        self.cfg = new
-        log_event("reload", source_changed=changed_source)
-        if changed_source:
+        changed = changed_keys(self.cfg, new)
+        pending = tuple(k for k in changed if self._needs_restart(k))
+        applied = tuple(k for k in changed if k not in pending)
+        self.cfg = with_keys_from(new, self.cfg, pending)
+        self.health.restart_needed_keys = pending
+        self._apply_live(applied)
+        # health goes out at once (reloads_count, restart_needed), then every health_every_s
+        self.next_health_mono = 0.0
+        log_event("reload", applied=",".join(applied) or "none")
+        if pending:
+            sections = dict.fromkeys(k.split(".")[0] for k in pending)  # in order, once each
+            log_event("reload_restart_needed", "warning", sections=",".join(sections), keys=",".join(pending),
+                      note="changed in the file, not applied: restart the service to apply")
+
+    def _needs_restart(self, key: str) -> bool:
+        """True for a config key that is read only when the service starts."""
+        if key == "store.state_dir":
+            return True
+        if key == "mqtt.enabled":
+            return self.mqtt_from_config
+        if not self.use_mqtt:
+            return False
+        if key.startswith("mqtt."):
+            return key != "mqtt.outbox_max_mb"
+        # the topic tree's asset level and the default client id; the site level unless set in [mqtt]
+        return key == "asset.tag" or (key == "asset.site" and not self.cfg.mqtt.site)
+
+    def _apply_live(self, keys: tuple[str, ...]) -> None:
+        """Carry the reloaded values of ``keys`` (already in ``self.cfg``) into the running parts."""
+        from agent.store import store_limits
+
+        now = self.mono()
+        st = self.cfg.store
+        if self.store is not None and any(k.startswith(("store.snapshot_max", "store.trend_")) for k in keys):
+            self.store.set_limits(**store_limits(st))
+        if "store.snapshot_every_h" in keys:
+            self.next_scheduled_snapshot_mono = now + st.snapshot_every_h * 3600.0
+        if "mqtt.outbox_max_mb" in keys and self.link is not None:
+            self.link.outbox.set_max_bytes(int(self.cfg.mqtt.outbox_max_mb * 1024 * 1024))
+        if any(k.startswith("source.") for k in keys):
             self._restart_acquisition()
+
+    def status_text(self) -> str:
+        """The one-line service status (systemd STATUS=)."""
+        text = f"{self.ms.state.value}; {self.health.captures_done} captures"
+        if self.health.restart_needed_keys:
+            text += "; restart needed for " + ", ".join(self.health.restart_needed_keys)
+        return text
 
     def _restart_acquisition(self) -> None:
         if getattr(self, "acq", None) is not None:
@@ -639,7 +718,7 @@ class Daemon:
                 if self.reload_event.is_set():
                     notifier.reloading()
                     self._reload()
-                    notifier.ready("running; config reloaded")
+                    notifier.ready("config reloaded; " + self.status_text())
                 try:
                     item = self.queue.get(timeout=min(1.0, gate.max_wait_s))
                 except queue.Empty:
@@ -657,7 +736,7 @@ class Daemon:
                 gate.maybe_ping(self.mono())
                 self._publish_health(self.mono())
                 self._housekeeping(self.mono())
-                notifier.status(f"{self.ms.state.value}; {self.health.captures_done} captures")
+                notifier.status(self.status_text())
                 if self.max_captures is not None and self.health.captures_done >= self.max_captures:
                     break
         finally:

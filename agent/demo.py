@@ -82,22 +82,6 @@ def demo_signal(fs_hz: float, n: int, seed: int = 201):
     return acc + rng.normal(0, 0.05, n)
 
 
-def _sim_tag(truth: dict | None) -> str:
-    """What the simulator was doing, in a few words (the ground truth, for the audience)."""
-    if not truth:
-        return "-"
-    parts = []
-    for b in truth.get("bearings", []):
-        parts.append(f"{b['defect']} race st.{b['stage']}" if b["defect"] in ("outer", "inner")
-                     else f"{b['defect']} st.{b['stage']}")
-    if truth.get("cavitation_g"):
-        parts.append("cavitation")
-    parts += [f"sensor {s['kind']}" for s in truth.get("sensor", [])]
-    if not truth.get("running", True):
-        parts.append("stopped")
-    return ", ".join(parts) or "healthy"
-
-
 def _mm_s(v: float) -> str:
     return f"{v:5.2f} mm/s" if v == v else "   -- mm/s"  # NaN: no usable capture
 
@@ -133,7 +117,7 @@ def run_demo(out_dir: str | Path = "demo-out", *, jobs: int | None = None, strea
     """Simulate ``scenario`` (if not done already) and replay it with a live console view."""
     from agent.cli import SAFETY_NOTE
     from agent.config import load_config
-    from agent.replay_cmd import change_line, load_events, run_replay, summary_lines
+    from agent.replay_cmd import change_line, load_events, run_replay, sim_tag, summary_lines
     from agent.scenario import find_scenario, load_scenario
     from agent.sources.replay import ReplaySource
 
@@ -179,7 +163,7 @@ def run_demo(out_dir: str | Path = "demo-out", *, jobs: int | None = None, strea
         n = view.seq + 1
         console.status(f"{_bar(n, total)} {n:3d}/{total}  {when}  {speed}  {view.state}  "
                        f"{_mm_s(view.vel_rms_mm_s)}  latest finding: {latest['finding']}"
-                       f"  | sim: {_sim_tag(view.truth)}", n, total)
+                       f"  | sim: {sim_tag(view.truth)}", n, total)
 
     try:
         res = run_replay(src, cfg, on_step=on_step)

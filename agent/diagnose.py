@@ -67,6 +67,8 @@ CODES = (
 )
 #: cavitation without a baseline: high-frequency floor density (g/√Hz) ramp — agent's own setting
 CAVITATION_DENSITY_G_RTHZ = (1.5e-4, 6e-4)
+#: cavitation beside a called bearing defect: (median ÷ highest) high-frequency region ramp — agent's own setting
+CAVITATION_SPREAD = (0.75, 0.85)
 #: rotor-bar pass without a baseline: carrier level ramp, g r.m.s. — agent's own setting
 ROTOR_BAR_G = (0.02, 0.06)
 
@@ -449,7 +451,13 @@ def rule_vane_pass(ctx: DiagnosisInput) -> Finding | None:
 
 
 def rule_cavitation(ctx: DiagnosisInput) -> Finding | None:
-    """Broadband, random rise of the floor above vane pass (high-frequency regions)."""
+    """Broadband, random rise of the floor above vane pass (high-frequency regions).
+
+    ``extra["floor_excess_db"]`` says how far the median high-frequency
+    region stands above the level at which the pattern is taken as sure
+    (10 dB over the baseline, or the top of the fixed density ramp): the
+    evidence strength that :func:`agent.advice.severity_of` grades.
+    """
     acc = ctx.accounted
     hf = [r for r in acc.floor_regions if r.f_lo_hz >= 999.0 and r.f_hi_hz > r.f_lo_hz]
     if not hf:
@@ -457,9 +465,10 @@ def rule_cavitation(ctx: DiagnosisInput) -> Finding | None:
     with_base = [r for r in hf if r.delta_db is not None]
     ev = []
     if with_base:
-        rises = [ramp(r.delta_db, 4.0, 10.0) for r in with_base]
-        broad = sorted(rises)[len(rises) // 2]  # the median region: broadband, not one band
-        conf = 0.9 * broad
+        deltas = sorted(r.delta_db for r in with_base)
+        mid = deltas[len(deltas) // 2]  # the median region: broadband, not one band
+        conf = 0.9 * ramp(mid, 4.0, 10.0)
+        excess_db = mid - 10.0
         ev += [{"metric": f"floor {r.name} vs baseline, dB", "value": round(r.delta_db, 1)} for r in with_base]
     else:
         dens = []
@@ -467,19 +476,25 @@ def rule_cavitation(ctx: DiagnosisInput) -> Finding | None:
             g = r.level / STANDARD_GRAVITY_MS2 if r.unit in ("m/s2", "m/s²") else None
             if g is None:
                 continue
-            d = g / math.sqrt(r.f_hi_hz - r.f_lo_hz)
-            dens.append(ramp(d, *CAVITATION_DENSITY_G_RTHZ))
+            dens.append(g / math.sqrt(r.f_hi_hz - r.f_lo_hz))
             ev.append({"metric": f"floor {r.name}, g r.m.s.", "value": round(g, 4)})
         if not dens:
             return None
-        broad = sorted(dens)[len(dens) // 2]
-        conf = 0.6 * broad  # no baseline: a fixed level, so never high confidence
+        mid = sorted(dens)[len(dens) // 2]
+        conf = 0.6 * ramp(mid, *CAVITATION_DENSITY_G_RTHZ)  # no baseline: a fixed level, so never high confidence
+        excess_db = 20.0 * math.log10(max(mid, 1e-30) / CAVITATION_DENSITY_G_RTHZ[1])
         ev.append({"metric": "no baseline", "value": None, "note": "judged against a fixed floor density"})
-    # a bearing defect also lifts the high-frequency floor, but with periodic impacts
+    # a bearing defect also lifts the high-frequency floor, with periodic impacts ringing a
+    # resonance: its rise sits in that band. Cavitation lifts every octave alike. A called bearing
+    # explains the rise unless the median region stands near the highest (agent's own setting,
+    # on the simulator: bearing ringing 0.22-0.42, stage-4 bearing floor 0.65-0.72, cavitation 0.88-1)
     called = [f for f in ctx.bearing_findings if f.code in BEARING_CODES and f.extra.get("called", f.confidence >= 0.5)]
     if called:
-        conf *= 0.4
+        density = sorted(r.level / math.sqrt(r.f_hi_hz - r.f_lo_hz) for r in hf)  # per √Hz: octaves differ in width
+        spread = density[len(density) // 2] / density[-1] if density[-1] > 0 else 0.0
+        conf *= 0.4 + 0.6 * ramp(spread, *CAVITATION_SPREAD)
         ev.append({"metric": "bearing defect called", "value": called[0].code})
+        ev.append({"metric": "median high-frequency region / highest (1 = evenly broadband)", "value": round(spread, 2)})
     return _finding(
         "cavitation", conf, "broadband high-frequency floor raised, no periodic impacts — cavitation or flow noise",
         ev,
@@ -487,6 +502,7 @@ def rule_cavitation(ctx: DiagnosisInput) -> Finding | None:
          "time waveform review: random bursts (cavitation) rather than periodic impacts (bearing)",
          "readings at another flow: cavitation changes strongly with flow and suction level"),
         component="pump",
+        floor_excess_db=round(excess_db, 1),
     )
 
 

@@ -148,6 +148,7 @@ def build_features(
     line_hz: float | None = 50.0,
     bands_hz: Mapping[str, tuple[float, float]] | None = None,
     floor_regions_hz: Mapping[str, tuple[float, float]] | None = None,
+    acc_floor: np.ndarray | None = None,
 ) -> FeatureVector:
     """The feature vector of one capture from what the pipeline produced.
 
@@ -168,6 +169,7 @@ def build_features(
     bands_hz : extra named velocity bands, name → (lo, hi) Hz → ``band_<name>_mm_s``.
     floor_regions_hz : name → (lo, hi) Hz → ``floor_<name>_db``; default
         "lf" 10 Hz–1 kHz and "hf" 1 kHz–f_max of the acceleration spectrum.
+    acc_floor : ``noise_floor(acc)`` when the caller has it already.
 
     Every part is optional; a part not given adds no features.
     """
@@ -198,7 +200,7 @@ def build_features(
         regions = floor_regions_hz
         if regions is None:
             regions = {"lf": (10.0, 1000.0), "hf": (1000.0, acc.fmax_hz)}
-        floor = noise_floor(acc)
+        floor = noise_floor(acc) if acc_floor is None else acc_floor
         for name, (rlo, rhi) in regions.items():
             sel = (acc.f_hz >= rlo) & (acc.f_hz <= rhi)
             if rlo >= rhi or not sel.any():
@@ -243,7 +245,7 @@ def features_from_analysis(analysis, line_hz: float | None = 50.0) -> FeatureVec
             raise ValueError(f"order levels must be velocity in mm/s, got {lv.quantity} in {lv.unit}")
         orders = {k: v for k, v in lv.as_dict().items() if math.isfinite(v)}
     return build_features(analysis.vel, analysis.acc, tm, orders, extras.get("envelope_levels_g"),
-                          iso_band_hz=o.iso_band_hz, line_hz=line_hz)
+                          iso_band_hz=o.iso_band_hz, line_hz=line_hz, acc_floor=getattr(analysis, "acc_floor", None))
 
 
 _PLAIN = {

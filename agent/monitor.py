@@ -23,11 +23,13 @@ import dataclasses
 from dataclasses import dataclass, field
 from typing import Any
 
+from agent.advice import persisting
 from agent.assess import EngineState, judge_analysis
 from agent.baseline import Baselines
 from agent.config import AgentConfig
 from agent.model import Capture, Finding, MachineState, Severity
 from agent.pipeline import Analysis, analyse_capture, analysis_to_json
+from agent.spectra import CaptureSpectra
 from agent.speed import SpeedEstimate
 
 SCHEMA = 1
@@ -57,6 +59,7 @@ class MonitorState:
     mode_until_utc_s: float | None = None
     n_captures: int = 0
     finding_codes: tuple[str, ...] = ()
+    finding_spells: tuple[tuple[str, float, int], ...] = ()  # (code, since, misses): agent.advice.persisting
     engine: Any = None  # alarm engine state (agent.assess), when present
     baselines: Any = None  # learned baselines (agent.baseline), when present
 
@@ -71,6 +74,7 @@ class MonitorState:
             "mode_until_utc_s": self.mode_until_utc_s,
             "n_captures": self.n_captures,
             "finding_codes": list(self.finding_codes),
+            "finding_spells": [list(x) for x in self.finding_spells],
         }
 
 
@@ -153,15 +157,16 @@ def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConf
     """Judge one capture (one per channel); return the result and the state to carry on."""
     if not captures:
         raise ValueError("monitor_step needs at least one capture")
-    failed = _quality_failures(captures, cfg)
+    cap = captures[0]
+    spectra = CaptureSpectra.of(cap)  # computed once, shared by the quality gate and the analysis
+    failed = _quality_failures(captures, cfg, spectra)
     if failed:
         return quality_fault_step(ms, captures, failed)
-    cap = captures[0]
     t = cap.t0_utc_s
     previous = None
     if ms.last_speed_hz:
         previous = SpeedEstimate(speed_hz=ms.last_speed_hz, confidence=1.0, found=True)
-    analysis = analyse_capture(cap, cfg, previous_speed=previous)
+    analysis = analyse_capture(cap, cfg, previous_speed=previous, spectra=spectra)
     speed = analysis.speed.speed if analysis.speed is not None else None
     speed_hz = speed.speed_hz if speed is not None and speed.found else None
     engine = ms.engine if ms.engine is not None else EngineState()
@@ -172,7 +177,9 @@ def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConf
         reason = f"maintenance mode: alarms held ({reason})"
         new_state = MachineState.NORMAL
     action, urgency = STATE_ACTION[new_state]
-    findings = analysis.findings
+    # findings that harm while they last (cavitation) are raised when shown without a break
+    findings, spells = persisting(analysis.findings, {f.code for f in reportable_findings(analysis.findings)},
+                                  ms.finding_spells, t)
     events: list[dict] = []
     since = ms.since_utc_s if new_state == ms.state else t
     if new_state != ms.state:
@@ -212,18 +219,20 @@ def monitor_step(ms: MonitorState, captures: tuple[Capture, ...], cfg: AgentConf
     )
     new_ms = dataclasses.replace(
         ms, state=new_state, since_utc_s=since, reason=reason, n_captures=ms.n_captures + 1, finding_codes=codes,
-        last_speed_hz=speed_hz, engine=engine, baselines=baselines,
+        finding_spells=spells, last_speed_hz=speed_hz, engine=engine, baselines=baselines,
     )
     return result, new_ms
 
 
-def _quality_failures(captures: tuple[Capture, ...], cfg: AgentConfig) -> list[tuple[Capture, Any]]:
+def _quality_failures(captures: tuple[Capture, ...], cfg: AgentConfig,
+                      first: CaptureSpectra | None = None) -> list[tuple[Capture, Any]]:
+    """Captures that fail the quality gate, with their verdicts; ``first``: the first capture's spectra."""
     from agent.quality import check_capture, limits_from_config
 
     limits = limits_from_config(cfg)
     out = []
-    for c in captures:
-        v = check_capture(c, limits)
+    for i, c in enumerate(captures):
+        v = check_capture(c, limits, spectra=first if i == 0 else None)
         if not v.ok:
             out.append((c, v))
     return out

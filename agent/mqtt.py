@@ -38,7 +38,7 @@ from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 
 from agent.errors import PublishError, StoreError
-from agent.outbox import Kind, Outbox, new_message_id
+from agent.outbox import Kind, NewMessage, Outbox, new_message_id
 
 log = logging.getLogger("agent.mqtt")
 
@@ -241,6 +241,17 @@ def settings_from_config(cfg) -> MqttSettings:
 
 
 @dataclass(frozen=True, slots=True)
+class Outgoing:
+    """One durable message for :meth:`MqttLink.send_many`, on ``<base>/<suffix>``."""
+
+    suffix: str
+    payload: Mapping[str, Any]
+    kind: Kind
+    retain: bool = False
+    replace_key: str | None = None
+
+
+@dataclass(frozen=True, slots=True)
 class Inbound:
     """A request as it arrived: command from the topic, raw payload, MQTT 5 reply fields."""
 
@@ -317,21 +328,28 @@ class MqttLink:
     def send(self, suffix: str, payload: Mapping[str, Any], *, kind: Kind,
              retain: bool = False, replace_key: str | None = None) -> int | None:
         """Queue a durable QoS 1 message on ``<base>/<suffix>``; returns the outbox seq."""
-        body = encode(payload)
-        topic = f"{self.topics.base}/{suffix}"
+        return self.send_many([Outgoing(suffix, payload, kind, retain, replace_key)])[0]
+
+    def send_many(self, messages: Sequence[Outgoing]) -> list[int | None]:
+        """Queue several durable QoS 1 messages (one capture's) in one outbox transaction:
+        one disk sync, all or none on disk, sent in list order. Returns their outbox seqs."""
+        rows = [NewMessage(f"{self.topics.base}/{m.suffix}", encode(m.payload), m.kind,
+                           msg_id=str(m.payload.get("id") or new_message_id()), qos=1,
+                           retain=m.retain, replace_key=m.replace_key) for m in messages]
         try:
-            seq = self.outbox.enqueue(topic, body, kind=kind,
-                                      msg_id=str(payload.get("id") or new_message_id()),
-                                      qos=1, retain=retain, replace_key=replace_key)
+            seqs = self.outbox.enqueue_many(rows)
         except StoreError:
             # the disk refuses (full): while connected, publish without the on-disk
             # guarantee rather than not at all; otherwise the caller counts the loss
-            if not self.connected or not self._put_direct(topic, body, None, retain):
+            if not self.connected:
                 raise
-            self.counters["outbox_bypassed"] += 1
-            return None
+            for r in rows:
+                if not self._put_direct(r.topic, r.payload, None, r.retain):
+                    raise
+                self.counters["outbox_bypassed"] += 1
+            return [None] * len(rows)
         self._events.put(("wake",))
-        return seq
+        return seqs
 
     def _put_direct(self, topic: str, body: bytes, corr: bytes | None, retain: bool) -> bool:
         try:

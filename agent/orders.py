@@ -24,7 +24,7 @@ from scipy import interpolate
 
 from agent.kinematics import ExpectedTone, expected_frequencies, train_from_config
 from agent.model import Peak
-from agent.spectra import Spectrum, SpectrumPlan, accel_spectrum, band_rms, velocity_spectrum
+from agent.spectra import CaptureSpectra, Spectrum, SpectrumPlan, accel_spectrum, band_rms, velocity_spectrum
 from agent.speed import (
     SpeedEstimate,
     SpeedProfile,
@@ -279,18 +279,20 @@ def speed_view(
     fmax_hz: float,
     f_low_hz: float,
     previous: SpeedEstimate | None = None,
+    spectra: CaptureSpectra | None = None,
 ) -> SpeedView:
     """Find running speed (no tachometer), label ``peaks``, compute order levels.
 
     ``machine`` is the ``[machine]`` config section (duck-typed): search range
     ``speed_rpm``, ``line_hz``, ``poles``, ``drive``, the train. ``vel`` is the
     capture's velocity spectrum (mm/s, high-passed at ``f_low_hz``) whose
-    ``peaks`` are labelled.
+    ``peaks`` are labelled; ``spectra`` the same samples'
+    :class:`agent.spectra.CaptureSpectra`, to share the speed spectrum.
     """
     train = train_from_config(machine)
     lo_rpm, hi_rpm = machine.speed_rpm
     x = np.asarray(accel_ms2, dtype=np.float64)
-    spec = speed_spectrum(x, fs_hz)
+    spec = speed_spectrum(x, fs_hz, spectra=spectra)
     hi_hz = min(hi_rpm / 60.0, 0.45 * fs_hz)
     if lo_rpm / 60.0 >= hi_hz:
         why = f"sample rate {fs_hz:g} Hz is too low for the speed range {lo_rpm:g}-{hi_rpm:g} r/min"

@@ -39,6 +39,7 @@ any peak riding on it.
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -328,7 +329,12 @@ def refine_fundamental(
 
 
 def _get(tone: Any, name: str, default=None):
-    return getattr(tone, name, default) if not isinstance(tone, Mapping) else tone.get(name, default)
+    return tone.get(name, default) if _is_mapping(type(tone)) else getattr(tone, name, default)
+
+
+@functools.lru_cache(maxsize=16)
+def _is_mapping(cls: type) -> bool:
+    return issubclass(cls, Mapping)  # once per type: an ABC check per look-up costs more than the look-up
 
 
 def _shaft_ratios(expected: Sequence[Any], shaft_ratios: Mapping[str, float] | None) -> dict[str, float]:
@@ -779,12 +785,14 @@ def floor_regions(
     """Broadband floor per region (band r.m.s. of the running-median floor)."""
     fl = noise_floor(spec) if floor is None else floor
     top = min(spec.fmax_hz, fmax_hz or spec.fmax_hz)
+    positive = spec.power > 0
     out = []
     for name, lo, hi in region_edges(speed_hz, top):
-        sel = (spec.f_hz >= lo) & (spec.f_hz < hi) & (spec.power > 0)
+        band = slice(*np.searchsorted(spec.f_hz, (lo, hi), side="left"))  # lo <= f < hi (f ascending)
+        sel = positive[band]
         if not np.any(sel):
             continue
-        level = float(np.sqrt(fl[sel].sum() / spec.enbw_bins))
+        level = float(np.sqrt(fl[band][sel].sum() / spec.enbw_bins))
         base = None if baseline is None else baseline.get(name)
         out.append(FloorRegion(name, float(lo), float(hi), level, spec.unit, base))
     return tuple(out)
@@ -823,7 +831,8 @@ def find_humps(
         idx = np.arange(power.size)
         for size, ratio in ((21, 10.0), (9, 4.0)):  # strong tones first (two may sit close), then the rest
             med = ndimage.median_filter(power, size=size, mode="nearest")
-            keep = ~ndimage.binary_dilation(power > ratio * med, iterations=grow)
+            # each tone line and its ``grow`` neighbours either side (a binary dilation, ``grow`` iterations)
+            keep = ~ndimage.maximum_filter1d(power > ratio * med, size=2 * grow + 1, mode="constant", cval=0)
             if np.count_nonzero(keep) > 16:
                 lp = np.log(np.maximum(power, 1e-300))
                 power = np.exp(np.interp(idx, idx[keep], lp[keep]))

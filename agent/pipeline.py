@@ -18,11 +18,13 @@ from agent.model import Capture, Finding, Peak
 from agent.orders import SpeedView, speed_view
 from agent.speed import SpeedEstimate
 from agent.spectra import (
+    CaptureSpectra,
     Spectrum,
     SpectrumPlan,
     accel_spectrum,
     find_peaks,
     noise_floor,
+    velocity_floor,
     velocity_spectrum,
 )
 
@@ -44,6 +46,8 @@ class Analysis:
     extras: dict = field(default_factory=dict)
     speed: SpeedView | None = None
     accounted: Any = None  # agent.peaks.AccountedSpectrum: every peak labelled (diagnosis stage)
+    spectra: CaptureSpectra | None = None  # the capture's acceleration spectra, shared by the stages
+    acc_floor: Any = None  # noise_floor(acc): the running-median floor the velocity floors are taken from
 
 
 def plan_for(cfg: AgentConfig, fs_hz: float, n_samples: int) -> SpectrumPlan:
@@ -68,18 +72,26 @@ def analyse_capture(
     cfg: AgentConfig,
     plan: SpectrumPlan | None = None,
     previous_speed: SpeedEstimate | None = None,
+    spectra: CaptureSpectra | None = None,
 ) -> Analysis:
-    """Spectra, overall levels, running speed, labelled peaks and order levels of one capture."""
+    """Spectra, overall levels, running speed, labelled peaks and order levels of one capture.
+
+    ``spectra`` is the capture's :class:`agent.spectra.CaptureSpectra` when
+    an earlier stage (the quality gate) made it: every acceleration spectrum
+    of the capture is then computed once for all the stages.
+    """
     if plan is None or plan.fs_hz != capture.fs_hz or plan.nperseg > capture.n_samples:
         plan = plan_for(cfg, capture.fs_hz, capture.n_samples)
+    spectra = CaptureSpectra.of(capture) if spectra is None else spectra.of_samples(capture.accel_ms2)
     band = iso_band_hz(cfg)
     band = (band[0], min(band[1], capture.fs_hz / 2.0))
-    acc = accel_spectrum(capture.accel_ms2, plan)
+    acc = spectra.accel(plan)
     vel = velocity_spectrum(acc, band[0])
     tm = time_metrics(capture.accel_ms2)
     overall = overall_levels(tm, vel, band, cfg.machine.iso_group, cfg.machine.support)
     fmax = analysis_fmax_hz(cfg, capture.fs_hz)
-    floor = noise_floor(vel)
+    acc_floor = noise_floor(acc)
+    floor = velocity_floor(vel, acc, acc_floor)
     peaks = find_peaks(
         vel,
         floor,
@@ -90,7 +102,7 @@ def analyse_capture(
     )
     sv = speed_view(
         capture.accel_ms2, capture.fs_hz, cfg.machine, vel=vel, peaks=peaks, fmax_hz=fmax,
-        f_low_hz=band[0], previous=previous_speed,
+        f_low_hz=band[0], previous=previous_speed, spectra=spectra,
     )
     peaks = sv.peaks
     a = Analysis(
@@ -105,6 +117,8 @@ def analyse_capture(
         fmax_hz=fmax,
         extras={"speed_hz": sv.speed.speed_hz} if sv.speed.found else {},
         speed=sv,
+        spectra=spectra,
+        acc_floor=acc_floor,
     )
     return with_diagnosis(with_bearing_findings(a, cfg), cfg)
 
@@ -127,14 +141,17 @@ def with_bearing_findings(a: Analysis, cfg: AgentConfig) -> Analysis:
     if not speed_hz:
         return a  # no running speed, no bearing tones (with no bearing configured: unassigned families)
     x, fs, sp, angle_speed = a.capture.accel_ms2, a.capture.fs_hz, float(speed_hz), None
+    spectra = a.spectra  # the capture's own spectra serve only the time-domain samples
     view = a.speed
     if view is not None and view.tracked and view.profile is not None:
         spr = int(fs / (1.05 * (view.profile.mean_hz + view.profile.span_hz)))
         try:
             x, fs, sp, angle_speed = resample_to_angle(x, fs, view.profile, spr), float(spr), 1.0, view.profile.mean_hz
+            spectra = None
         except ValueError:
             pass  # fall back to the time-domain capture
-    found = bearing_findings(x, fs, sp, cfg.machine, cfg.analysis, angle_domain_speed_hz=angle_speed)
+    found = bearing_findings(x, fs, sp, cfg.machine, cfg.analysis, angle_domain_speed_hz=angle_speed,
+                             spectra=spectra)
     return replace(a, findings=a.findings + found) if found else a
 
 
@@ -145,18 +162,15 @@ def floor_spectrum(accel_ms2, fs_hz: float, line_hz: float = 1.5) -> Spectrum:
     """A well-averaged acceleration spectrum of about ``line_hz`` per line for floor levels and humps.
 
     4-term Blackman-Harris window (side lobes below −92 dB; Harris 1978), so
-    the leakage skirts of strong tones do not pose as a raised floor or a hump.
+    the leakage skirts of strong tones do not pose as a raised floor or a hump;
+    Welch averaging with 50 % overlap (the same figures as
+    ``scipy.signal.welch(..., scaling="spectrum")``, from a shared plan).
     """
-    from scipy import signal as sps
-
     x = np.asarray(accel_ms2, dtype=np.float64)
     n = 1 << int(round(np.log2(fs_hz / line_hz)))
     n = int(min(n, max(64, x.size // 4)))
-    win = sps.get_window("blackmanharris", n, fftbins=True)
-    f, p = sps.welch(x, fs=fs_hz, window=win, nperseg=n, noverlap=n // 2, scaling="spectrum", detrend="constant")
-    enbw = n * float(np.sum(win**2)) / float(win.sum()) ** 2
-    return Spectrum(f_hz=f, power=p, quantity="acceleration", unit="m/s2", window="blackmanharris",
-                    bin_width_hz=fs_hz / n, enbw_bins=enbw, n_averages=max(1, 2 * (x.size // n) - 1), nperseg=n)
+    plan = SpectrumPlan.with_segments(fs_hz, n, n // 2, window="blackmanharris")
+    return accel_spectrum(x, plan)
 
 
 def with_diagnosis(a: Analysis, cfg: AgentConfig) -> Analysis:
@@ -177,14 +191,15 @@ def with_diagnosis(a: Analysis, cfg: AgentConfig) -> Analysis:
         speed_hz=a.speed.speed.speed_hz if found else None,
         speed_confidence=a.speed.speed.confidence if found else 0.0,
         expected=a.speed.expected if found else (),
-        bearing_findings=bearing,
+        bearing_findings=bearing, acc_floor=a.acc_floor,
     )
     return replace(a, accounted=accounted, findings=findings + others)
 
 
 def diagnosis_stage(capture: Capture, cfg: AgentConfig, acc: Spectrum, overall: OverallLevels, fmax_hz: float,
                     *, speed_hz: float | None, speed_confidence: float = 1.0, expected: tuple = (),
-                    bearing_findings: tuple[Finding, ...] = (), baseline_ratios: dict | None = None):
+                    bearing_findings: tuple[Finding, ...] = (), baseline_ratios: dict | None = None,
+                    acc_floor: np.ndarray | None = None):
     """Account for every peak, then diagnose and advise: (AccountedSpectrum, findings).
 
     ``baseline_ratios`` (optional): current level ÷ learned normal per feature
@@ -195,7 +210,9 @@ def diagnosis_stage(capture: Capture, cfg: AgentConfig, acc: Spectrum, overall: 
     Peaks are taken from a velocity spectrum with a lower cut than the ISO
     band (a quarter of the lowest running speed), so sub-synchronous tones
     (belts, oil whirl, half orders) are seen; the floor regions and humps
-    from a well-averaged spectrum of a few Hz per line.
+    from a well-averaged spectrum of a few Hz per line. ``acc_floor``
+    (``noise_floor(acc)``, when the caller has it) spares the peak floor's
+    running median.
     """
     from agent.advice import advise
     from agent.diagnose import DiagnosisInput, diagnose
@@ -204,7 +221,8 @@ def diagnosis_stage(capture: Capture, cfg: AgentConfig, acc: Spectrum, overall: 
     bin_hz = acc.bin_width_hz
     f_low = max(3 * bin_hz, min(iso_band_hz(cfg)[0], 0.25 * cfg.machine.speed_rpm[0] / 60.0))
     dvel = velocity_spectrum(acc, f_low)
-    pk = find_peaks(dvel, None, min_height_db=cfg.analysis.peak_min_height_db, fmin_hz=f_low, fmax_hz=fmax_hz,
+    dfloor = None if acc_floor is None else velocity_floor(dvel, acc, acc_floor)
+    pk = find_peaks(dvel, dfloor, min_height_db=cfg.analysis.peak_min_height_db, fmin_hz=f_low, fmax_hz=fmax_hz,
                     max_peaks=2 * cfg.analysis.max_peaks)
     cacc = floor_spectrum(capture.accel_ms2, capture.fs_hz)
     accounted = account_peaks(

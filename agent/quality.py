@@ -46,7 +46,7 @@ from typing import Mapping
 import numpy as np
 
 from agent.model import STANDARD_GRAVITY_MS2, Capture
-from agent.spectra import SpectrumPlan, accel_spectrum, band_rms, velocity_spectrum
+from agent.spectra import CaptureSpectra, SpectrumPlan, band_rms, velocity_spectrum
 
 PROBLEM_ORDER = (
     "nan",
@@ -192,8 +192,14 @@ def _pile_up(x: np.ndarray, median: float, band: float, step: float, sign: int) 
     return at, near
 
 
-def ski_figures(x: np.ndarray, fs_hz: float, limits: QualityLimits) -> tuple[float, float] | None:
+def ski_figures(
+    x: np.ndarray, fs_hz: float, limits: QualityLimits, spectra: CaptureSpectra | None = None
+) -> tuple[float, float] | None:
     """(low-band share of the acceleration, velocity rise), both in dB; None if too short.
+
+    ``x`` may carry its mean (the spectrum removes each segment's mean);
+    ``spectra``, the same samples' :class:`agent.spectra.CaptureSpectra`,
+    shares the spectrum with the later stages.
 
     * low-band share: r.m.s. of the acceleration lines in ``ski_low_band_hz``
       relative to the capture's AC r.m.s. Real machine acceleration has
@@ -216,7 +222,7 @@ def ski_figures(x: np.ndarray, fs_hz: float, limits: QualityLimits) -> tuple[flo
     if (lo_b - lo_a) / bin_hz < 3:
         return None
     plan = SpectrumPlan.build(fs_hz, x.size, window="hann", lines=nperseg // 2)
-    acc = accel_spectrum(x, plan)
+    acc = (CaptureSpectra(x, fs_hz) if spectra is None else spectra.of_samples(x)).accel(plan)
     vel = velocity_spectrum(acc, f_low_hz=0.5 * bin_hz)
     ac_rms = float(np.std(x))
     low_acc = band_rms(acc, lo_a, lo_b)
@@ -227,9 +233,14 @@ def ski_figures(x: np.ndarray, fs_hz: float, limits: QualityLimits) -> tuple[flo
 
 
 def check_capture(
-    capture: Capture, limits: QualityLimits = QualityLimits(), measured_fs_hz: float | None = None
+    capture: Capture, limits: QualityLimits = QualityLimits(), measured_fs_hz: float | None = None,
+    *, spectra: CaptureSpectra | None = None,
 ) -> QualityVerdict:
-    """Run every check on one capture; problems are values, never exceptions."""
+    """Run every check on one capture; problems are values, never exceptions.
+
+    ``spectra`` (the capture's :class:`agent.spectra.CaptureSpectra`) lets the
+    ski-slope check share its spectrum with the analysis that follows.
+    """
     x = capture.accel_ms2
     fs = capture.fs_hz
     problems: dict[str, str] = {}
@@ -257,15 +268,16 @@ def check_capture(
     peak = float(np.abs(x).max())
     # one sort gives the median, the distinct levels and the smallest step between them
     xs = np.sort(x)
-    median = float(np.median(xs))
+    mid = x.size // 2
+    median = float(xs[mid] if x.size % 2 else (xs[mid - 1] + xs[mid]) / 2.0)  # as np.median of the sorted samples
     figures.update(mean_ms2=mean, std_ms2=std, peak_ms2=peak, rms_ms2=math.sqrt(mean * mean + std * std))
 
     # flatline / dead channel
     repeat = float(np.mean(x[1:] == x[:-1]))
     gaps = np.diff(xs)
-    gaps = gaps[gaps > 0]  # the steps between consecutive distinct levels (as np.unique would give them)
-    distinct = int(gaps.size) + 1
-    step = float(gaps.min()) if distinct > 1 else 0.0  # quantisation step (or finer)
+    rises = gaps > 0  # the steps between consecutive distinct levels (as np.unique would give them)
+    distinct = int(np.count_nonzero(rises)) + 1
+    step = float(np.min(gaps, where=rises, initial=np.inf)) if distinct > 1 else 0.0  # quantisation step (or finer)
     figures.update(repeat_fraction=repeat)
     if distinct == 1:
         flag("flatline", "signal does not vary at all (dead channel)")
@@ -317,7 +329,7 @@ def check_capture(
 
     # ski slope
     if "flatline" not in problems:
-        ski = ski_figures(x - mean, fs, limits)
+        ski = ski_figures(x, fs, limits, spectra)
         if ski is not None:
             share_db, rise_db = ski
             figures.update(ski_low_share_db=share_db, ski_velocity_rise_db=rise_db)

@@ -169,7 +169,7 @@ def run_replay(source, cfg, *, on_step: Callable[[StepView, list[dict]], None] |
 
 
 def change_line(c: dict) -> str:
-    t = _utc(c["t0_utc_s"]).replace("T", " ")[:-4] + "Z"
+    t = _when(c["t0_utc_s"])
     if c["kind"] == "state":
         arrow = f"{c['from']} -> {c['to']}" if c["from"] else f"starts {c['to']}"
         return f"{t}  #{c['seq']:04d}  state {arrow}: {c['reason']}"
@@ -178,46 +178,190 @@ def change_line(c: dict) -> str:
     return f"{t}  #{c['seq']:04d}  - cleared {c['code']}"
 
 
-def _relevant(ev: dict, c: dict) -> bool:
-    """Whether a change the agent showed can answer a scenario event (by kind; not a judgement of right or wrong)."""
-    phase, kind = ev.get("phase", ""), ev.get("kind", "")
-    if c["kind"] == "state":
-        return phase == "ends" or kind != "sensor" or c["to"] == "sensor_fault"
-    if (c["kind"] == "cleared") != (phase == "ends"):
-        return False
-    code, title = c.get("code", ""), c.get("title", "")
-    if kind == "bearing":
-        return code.startswith("bearing") and (c["kind"] == "cleared" or ev.get("bearing", "") in title)
-    if kind == "sensor":
-        return "sensor" in code
-    return kind in code or kind in title.lower()
+#: simulated fault kind (agent.scenario) → the finding codes that name it; bearings: agent.bearings.CODES
+FAULT_CODES = {"unbalance": ("unbalance",), "misalignment": ("misalignment",), "bent_shaft": ("bent_shaft",),
+               "looseness": ("looseness",), "belt_wear": ("belt",), "cavitation": ("cavitation",)}
+#: a resonance finding within this fraction of a simulated natural frequency states a true property
+RESONANCE_TOL = 0.1
+ALARM_STATES = ("alert", "danger")
 
 
-def truth_comparison(res: ReplayResult, events: list[dict], horizon_s: float = float("inf")) -> list[str]:
-    """For every fault or sensor event: the first change the agent showed after it.
+def sim_tag(truth: dict | None) -> str:
+    """What the simulator was doing, in a few words (the ground truth, for the audience)."""
+    if not truth:
+        return "-"
+    parts = []
+    for b in truth.get("bearings", []):
+        what = f"{b['defect']} race" if b["defect"] in ("outer", "inner") else b["defect"]
+        parts.append(f"{b['bearing']} {what} st.{b['stage']}")
+    parts += [n.replace("_", " ") for n in truth.get("faults", []) if n in FAULT_CODES and n != "cavitation"]
+    if truth.get("cavitation_g"):
+        parts.append("cavitation")
+    parts += [f"sensor {s['kind']}" for s in truth.get("sensor", [])]
+    if not truth.get("running", True):
+        parts.append("stopped")
+    return ", ".join(parts) or "healthy"
 
-    A change counts for an event when it comes at or after the event and
-    before the next fault/sensor event (and within ``horizon_s``, if given); speed
-    changes and stops are the story's background, not events to detect.
-    """
-    lines = []
-    story = [ev for ev in events if ev.get("kind") != "operation"]
-    for k, ev in enumerate(story):
-        t_ev = ev["t0_utc_s"]
-        later = [e["t0_utc_s"] for e in story[k + 1 :] if e["t0_utc_s"] > t_ev]
-        t_end = min([t_ev + horizon_s] + later[:1])
-        hit = next((c for c in res.changes if t_ev <= c["t0_utc_s"] < t_end
-                    and not (c["kind"] == "state" and c["from"] is None) and _relevant(ev, c)), None)
-        when = ev["utc"].replace("T", " ")[:-4] + "Z"
+
+def _fault_key(ev: dict) -> tuple[str, ...] | None:
+    """(code, ..., component) naming a scenario fault event; None for sensor faults and the operation."""
+    from agent.bearings import CODES
+
+    if ev.get("kind") == "bearing":
+        return CODES[ev["defect"]], ev.get("bearing", "")
+    codes = FAULT_CODES.get(ev.get("kind", ""))
+    return None if codes is None else (*codes, "")
+
+
+def _truth_keys(truth: dict | None) -> set[tuple[str, ...]]:
+    """The faults one capture's ground truth holds, as :func:`_fault_key` names them."""
+    from agent.bearings import CODES
+
+    if not truth:
+        return set()
+    keys = {(CODES[b["defect"]], b["bearing"]) for b in truth.get("bearings", [])}
+    keys |= {(*FAULT_CODES[n], "") for n in truth.get("faults", []) if n in FAULT_CODES}
+    if truth.get("cavitation_g"):
+        keys.add(("cavitation", ""))
+    return keys
+
+
+def _names(f, key: tuple[str, ...]) -> bool:
+    """Whether finding ``f`` names fault ``key``: one of its codes and, for a bearing, that bearing."""
+    *codes, component = key
+    return f.code in codes and (not component or f.component == component)
+
+
+def _shown(st: StepView) -> list:
+    """The findings the operator was shown for this capture (the monitor's announcement rule)."""
+    from agent.monitor import reportable_findings
+
+    return reportable_findings(st.findings)
+
+
+def _when(t: float) -> str:
+    return _utc(t).replace("T", " ")[:-4] + "Z"
+
+
+def _finding_text(f) -> str:
+    where = f", {f.component}" if f.component and f.code.startswith("bearing") else ""
+    stage = f", stage {f.stage}" if f.stage else ""
+    return f"[{f.severity.name.lower()}] {f.code}{where}{stage}"
+
+
+def _event_line(ev: dict, steps: list[StepView], story: list[dict]) -> str:
+    """What the agent showed for one scenario event (see :func:`truth_comparison`)."""
+    t_ev, phase = ev["t0_utc_s"], ev.get("phase", "")
+    key = _fault_key(ev)
+    same = [e for e in story if e["t0_utc_s"] > t_ev and e.get("kind") == ev.get("kind")
+            and (key is None or _fault_key(e) == key)]
+    ends = [e["t0_utc_s"] for e in same if e.get("phase") == "ends"]
+    t_end = min(ends, default=float("inf"))
+    t_next = min([e["t0_utc_s"] for e in same] + [t_end])
+    after = [st for st in steps if st.t0_utc_s >= t_ev]
+    head = f"  {_when(t_ev)}  {ev['what']:<56}  "
+    if key is None:  # a sensor fault: the state should say so
+        if phase == "ends":
+            back = next((st for st in after if st.state != "sensor_fault"), None)
+            if back is None:
+                return head + "state stays sensor_fault to the end"
+            if after and after[0].truth and after[0].truth.get("sensor") and after[0].state == "sensor_fault":
+                return head + "state stays sensor_fault (another sensor fault goes on)"
+            return head + f"state back to {back.state} after {(back.t0_utc_s - t_ev) / 3600:5.1f} h"
+        hit = next((st for st in after if st.t0_utc_s < t_end and st.state == "sensor_fault"), None)
         if hit is None:
-            at = next((st for st in res.steps if st.t0_utc_s >= t_ev), None)
-            state = f" (state {at.state})" if at is not None else ""
-            lines.append(f"  {when}  {ev['what']:<56}  no change shown{state}")
-        else:
-            delay_h = (hit["t0_utc_s"] - t_ev) / 3600.0
-            what = change_line(hit).split("  ", 2)[-1]
-            lines.append(f"  {when}  {ev['what']:<56}  after {delay_h:5.1f} h: {what}")
+            return head + "NOT FOUND: state never sensor_fault while it lasted"
+        return head + f"found after {(hit.t0_utc_s - t_ev) / 3600:5.1f} h: state sensor_fault ({hit.reason})"
+    if phase == "ends":
+        gone = next((st for st in after if not any(_names(f, key) for f in _shown(st))), None)
+        if gone is None:
+            return head + "still shown at the end of the replay"
+        how = " (machine stopped)" if gone.state == "stopped" else ""
+        return head + f"cleared after {(gone.t0_utc_s - t_ev) / 3600:5.1f} h{how}"
+    window = [st for st in after if st.t0_utc_s < (t_end if phase == "begins" else t_next)]
+    running = [st for st in window if st.state not in ("stopped", "sensor_fault")]
+    hits = [(st, f) for st in running for f in _shown(st) if _names(f, key)]
+    if not hits:
+        other = sorted({f"{f.code}" + (f" ({f.component})" if f.component else "") for st in running for f in _shown(st)})
+        return head + f"NOT FOUND in {len(running)} captures" + (f" (shown instead: {', '.join(other)})" if other else "")
+    st, f = hits[0]
+    n_hit = len({id(s) for s, _ in hits})
+    text = f"found after {(st.t0_utc_s - t_ev) / 3600:5.1f} h: {_finding_text(f)}; in {n_hit} of {len(running)} captures"
+    if phase == "grows":
+        stages = [g.stage for _, g in hits if g.stage]
+        if stages:
+            text += f", agent's stage {min(stages)}-{max(stages)}"
+    return head + text
+
+
+def truth_comparison(res: ReplayResult, events: list[dict]) -> list[str]:
+    """The scenario's story beside what the agent showed, counting only findings that name the fault.
+
+    For each fault event: the first capture at or after it in which the
+    operator was shown a finding of the right code — and, for a bearing, on
+    the right bearing — while the fault was there (a stage change: until
+    the next change), and in how many running captures of that window it
+    was shown; for a fault's end, when the finding cleared. A sensor fault
+    is found when the state is sensor_fault. State changes (an alarm says
+    that something changed, not what) and findings that name no simulated
+    fault are listed apart, so a wrong call is never counted as a detection.
+    """
+    steps = res.steps
+    story = [ev for ev in events if ev.get("kind") != "operation"]
+    lines = [_event_line(ev, steps, story) for ev in story]
+    lines += ["", "Alarm states (the machine state says something changed, not what):"]
+    alarms = [c for c in res.changes if c["kind"] == "state" and c["to"] in ALARM_STATES]
+    by_seq = {st.seq: st for st in steps}
+    false_alarms = 0
+    for c in alarms:
+        tag = sim_tag(by_seq[c["seq"]].truth) if c["seq"] in by_seq else "-"
+        false_alarms += tag == "healthy"
+        lines.append(f"  {_when(c['t0_utc_s'])}  {c['from']} -> {c['to']}: {c['reason']}  [sim: {tag}]")
+    if not alarms:
+        lines.append("  none")
+    lines.append(f"  {false_alarms} while the simulated machine was healthy (false alarms)")
+    lines += ["", "Other findings (naming no fault simulated at the time: wrong calls):"]
+    lines += _other_findings(steps)
     return lines
+
+
+def _other_findings(steps: list[StepView]) -> list[str]:
+    """Shown findings that name no fault of their capture's ground truth, grouped by code and component."""
+    groups: dict[tuple[str, str], dict] = {}
+    true_props: dict[tuple[str, str], int] = {}
+    prev: set[tuple[str, str]] = set()
+    for st in steps:
+        if st.truth is None:
+            prev = set()
+            continue
+        keys = _truth_keys(st.truth)
+        now = set()
+        for f in _shown(st):
+            if any(_names(f, k) for k in keys):
+                continue
+            g = (f.code, f.component if f.code.startswith("bearing") else "")
+            centre = next((e["value"] for e in f.evidence if e.get("metric") == "hump centre, Hz"), None)
+            if f.code == "resonance" and centre and any(
+                    abs(centre / r - 1) <= RESONANCE_TOL for r in st.truth.get("resonances_hz", [])):
+                true_props[g] = true_props.get(g, 0) + 1  # a natural frequency the simulated machine has
+                continue
+            now.add(g)
+            d = groups.setdefault(g, {"n": 0, "raised": 0, "first": st.t0_utc_s, "last": 0.0, "worst": f.severity})
+            d["n"] += 1
+            d["raised"] += g not in prev
+            d["last"] = st.t0_utc_s
+            d["worst"] = max(d["worst"], f.severity)
+        prev = now
+    out = []
+    for (code, comp), d in sorted(groups.items(), key=lambda kv: (-kv[1]["n"], kv[0])):
+        out.append(f"  {code:<24} {comp:<18} in {d['n']:3d} captures (raised {d['raised']}x), "
+                   f"{_when(d['first'])} ... {_when(d['last'])}, up to {d['worst'].name.lower()}")
+    if not out:
+        out.append("  none")
+    for (code, _), n in sorted(true_props.items()):
+        out.append(f"  ({code} in {n} captures sits at a natural frequency of the simulated machine: "
+                   "a true property, not counted as a wrong call)")
+    return out
 
 
 def summary_lines(res: ReplayResult, events: list[dict] | None = None) -> list[str]:
@@ -242,13 +386,16 @@ def summary_lines(res: ReplayResult, events: list[dict] | None = None) -> list[s
     if with_truth:
         err = [abs(s.speed_hz - s.truth["speed_hz"]) / s.truth["speed_hz"] for s in with_truth]
         err.sort()
+        off = sum(1 for e in err if e > 0.01)
         out.append(f"  running speed vs simulator truth: median error {100 * err[len(err) // 2]:.3f} %, "
-                   f"largest {100 * err[-1]:.3f} % over {len(err)} running captures")
+                   f"largest {100 * err[-1]:.3f} % over {len(err)} running captures"
+                   + (f"; {off} off by more than 1 %" if off else ""))
     for p, why in res.skipped:
         out.append(f"  skipped {p}: {why}")
     if events:
         out.append("")
-        out.append("Scenario events vs what the agent showed:")
+        out.append("Scenario events vs what the agent showed (a finding counts only when it names the simulated "
+                   "fault — its code and, for a bearing, that bearing — while the fault is there):")
         out.extend(truth_comparison(res, events))
     return out
 

@@ -563,6 +563,8 @@ def synthesize(
         "cavitation_g": 0.0,
         "floor_mm_s": 0.0,
         "sensor": [],
+        # the machine's natural frequencies (true properties, not faults): the structure's mode, the ringing
+        "resonances_hz": ([machine.structure.freq_hz] if machine.structure is not None else []) + [machine.ring.freq_hz],
     }
     tones: list[_Tone] = []
     floor_rms_ms2: list[float] = []  # white-ish broadband parts (accel r.m.s.)

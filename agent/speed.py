@@ -59,14 +59,14 @@ from dataclasses import dataclass
 import numpy as np
 
 from agent.spectra import (
+    CaptureSpectra,
     Spectrum,
     SpectrumPlan,
-    accel_spectrum,
     find_peaks,
     noise_floor,
     noise_threshold_db,
-    segment_spectra,
-    tone_at,
+    segment_powers,
+    tones_at_rows,
 )
 
 #: evidence cap per tone, dB above the noise-only level
@@ -191,7 +191,11 @@ def _match(
     cand_hz: np.ndarray, orders: np.ndarray, pk_f: np.ndarray, tol_abs_hz: float, tol_rel: float
 ) -> tuple[np.ndarray, np.ndarray]:
     """Index of the nearest peak to every order×candidate and its closeness (0..1)."""
-    target = cand_hz[:, None] * orders[None, :]
+    return _nearest_peak(cand_hz[:, None] * orders[None, :], pk_f, tol_abs_hz, tol_rel)
+
+
+def _nearest_peak(target: np.ndarray, pk_f: np.ndarray, tol_abs_hz: float, tol_rel: float):
+    """(index of the nearest peak, closeness 0..1) for every target frequency; ``pk_f`` ascending."""
     j = np.clip(np.searchsorted(pk_f, target), 1, pk_f.size - 1)
     left, right = pk_f[j - 1], pk_f[j]
     use_left = np.abs(target - left) <= np.abs(right - target)
@@ -199,6 +203,32 @@ def _match(
     d = np.abs(pk_f[idx] - target)
     tol = np.maximum(tol_abs_hz, tol_rel * target)
     close = np.clip(1.0 - (d / tol) ** 2, 0.0, 1.0)
+    return idx, close
+
+
+def _match_grid(
+    cand_hz: np.ndarray, orders: np.ndarray, pk_f: np.ndarray, tol_abs_hz: float, tol_rel: float
+) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_match` over an ascending candidate grid, worked out only where some peak is in reach.
+
+    Elsewhere closeness is 0 (and the index 0): every order×candidate within
+    a tolerance of a peak is in one of the ranges below, so the result
+    equals :func:`_match`'s wherever closeness is above 0.
+    """
+    idx = np.zeros((cand_hz.size, orders.size), dtype=np.intp)
+    close = np.zeros((cand_hz.size, orders.size))
+    pk = pk_f[np.isfinite(pk_f)]
+    reach = 1.1 * np.maximum(tol_abs_hz, tol_rel * pk) + 1e-9  # a little more than any tolerance there
+    first = np.searchsorted(cand_hz, ((pk - reach)[:, None] / orders[None, :]).ravel(), "left") - 1
+    last = np.searchsorted(cand_hz, ((pk + reach)[:, None] / orders[None, :]).ravel(), "right") + 1
+    first, last = np.clip(first, 0, cand_hz.size), np.clip(last, 0, cand_hz.size)
+    n_rows = np.maximum(last - first, 0)
+    if not n_rows.any():
+        return idx, close
+    # the candidate rows of every (peak, order) range, one after the other
+    rows = np.arange(n_rows.sum()) + np.repeat(first - (np.cumsum(n_rows) - n_rows), n_rows)
+    cols = np.repeat(np.tile(np.arange(orders.size), pk.size), n_rows)
+    idx[rows, cols], close[rows, cols] = _nearest_peak(cand_hz[rows] * orders[cols], pk_f, tol_abs_hz, tol_rel)
     return idx, close
 
 
@@ -287,7 +317,7 @@ def estimate_speed(
     # plus the smearing of a slowly wandering speed (0.1 % of the tone)
     tol_abs = 0.6 * bin_hz
     tol_rel = 0.001
-    idx, close = _match(cand, orders, pk_f, tol_abs, tol_rel)
+    idx, close = _match_grid(cand, orders, pk_f, tol_abs, tol_rel)
     contrib = weights[None, :] * pk_ev[idx] * close
     score = contrib.sum(axis=1)
     # a shaft family without its fundamental (1X, or a forcing order at its
@@ -445,17 +475,20 @@ def _resolution_check(speed_hz, line_hz, bin_hz):
     )
 
 
-def speed_spectrum(accel_ms2: np.ndarray, fs_hz: float, *, window: str = "hann") -> Spectrum:
+def speed_spectrum(
+    accel_ms2: np.ndarray, fs_hz: float, *, window: str = "hann", spectra: CaptureSpectra | None = None
+) -> Spectrum:
     """One Hann segment over the whole capture: the finest line spacing for speed.
 
     The segment length is the capture length rounded down to an even count,
-    so the line spacing is fs/N ≈ 1/capture length.
+    so the line spacing is fs/N ≈ 1/capture length. ``spectra`` (the same
+    samples' :class:`agent.spectra.CaptureSpectra`) shares it with other stages.
     """
     x = np.asarray(accel_ms2, dtype=np.float64)
     if x.ndim != 1 or x.size < 16:
         raise ValueError(f"accel_ms2 must be 1-D with at least 16 samples, got shape {x.shape}")
     plan = SpectrumPlan.build(fs_hz, x.size, window=window, lines=x.size // 2, overlap=0.0)
-    return accel_spectrum(x, plan)
+    return (CaptureSpectra(x, fs_hz) if spectra is None else spectra.of_samples(x)).accel(plan)
 
 
 # ---------------------------------------------------------------- within-capture speed
@@ -490,8 +523,9 @@ class SpeedProfile:
 
     @property
     def mean_hz(self) -> float:
-        p = np.polynomial.Polynomial(self.coeffs).integ()
-        return float((p(self.duration_s) - p(0.0)) / self.duration_s)
+        rev = np.polynomial.polynomial.polyint(self.coeffs)  # revolutions since the first sample
+        pv = np.polynomial.polynomial.polyval
+        return float((pv(self.duration_s, rev) - pv(0.0, rev)) / self.duration_s)
 
     @property
     def span_hz(self) -> float:
@@ -591,15 +625,12 @@ def speed_profile(
             f"frames of {nfr / fs_hz:.3f} s ({bin_hz:.2f} Hz lines) are too short to track {h}X; "
             "use a longer frame_s"
         )
-    t_c, f_c, w_c = [], [], []
-    # tone_at reads a few lines around the ridge: the frames' lines above it are not kept
-    for s, sp in zip(starts, segment_spectra(x, plan, n_lines=khi + 8)):
-        k = klo + int(np.argmax(sp.power[klo : khi + 1]))
-        f, amp = tone_at(sp, k)
-        t_c.append((s + nfr / 2) / fs_hz)
-        f_c.append(f / h)
-        w_c.append(amp)
-    t_c, f_c, w_c = np.array(t_c), np.array(f_c), np.array(w_c)
+    # each frame's ridge line and its tone (tone_at reads a few lines around it: the lines above are not kept)
+    powers = segment_powers(x, plan, n_lines=khi + 8)
+    ridge = klo + np.argmax(powers[:, klo : khi + 1], axis=1)
+    f_r, w_c = tones_at_rows(powers, ridge, bin_width_hz=bin_hz, enbw_bins=plan.figures.enbw_bins)
+    t_c = (starts[: powers.shape[0]] + nfr / 2) / fs_hz
+    f_c = f_r / h
     deg = int(min(degree, max(0, t_c.size - 2)))
     # robust fit: drop frames far from a first fit (ridge jumps), refit
     coeffs = np.polynomial.polynomial.polyfit(t_c, f_c, deg, w=w_c)

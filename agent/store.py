@@ -143,22 +143,24 @@ def json_bytes(obj: Any) -> bytes:
     return json.dumps(_json_safe(obj), indent=1, allow_nan=False, sort_keys=True).encode()
 
 
+def store_limits(st) -> dict:
+    """:meth:`Store.set_limits` arguments from a ``StoreConfig``."""
+    return {"max_count": st.snapshot_max_count, "max_bytes": int(st.snapshot_max_mb * 1024 * 1024),
+            "raw_keep_s": st.trend_raw_days * 86400.0, "hourly_keep_s": st.trend_hourly_days * 86400.0}
+
+
 class Store:
     """Trend DB + snapshot folders under one state directory."""
 
     def __init__(self, state_dir: str | os.PathLike, *, max_count: int = 500,
                  max_bytes: int = 500 * 1024 * 1024, raw_keep_s: float = 14 * 86400,
                  hourly_keep_s: float = 400 * 86400, clock=time.time):
-        if max_count < 1 or max_bytes < 1:
-            raise ValueError("store max_count and max_bytes must be >= 1")
         self.state_dir = Path(state_dir)
         self.snap_dir = self.state_dir / "snapshots"
-        self.max_count = int(max_count)
-        self.max_bytes = int(max_bytes)
-        self.raw_keep_s = float(raw_keep_s)
-        self.hourly_keep_s = float(hourly_keep_s)
-        self._clock = clock
         self._lock = threading.RLock()
+        self.set_limits(max_count=max_count, max_bytes=max_bytes, raw_keep_s=raw_keep_s,
+                        hourly_keep_s=hourly_keep_s)
+        self._clock = clock
         self.errors = 0
         self.last_error = ""
         try:
@@ -192,11 +194,19 @@ class Store:
         """The store of an ``AgentConfig`` (state_dir relative to the config file)."""
         from agent.config import resolve_path
 
-        st = cfg.store
-        return cls(resolve_path(cfg, st.state_dir), max_count=st.snapshot_max_count,
-                   max_bytes=int(st.snapshot_max_mb * 1024 * 1024),
-                   raw_keep_s=st.trend_raw_days * 86400.0,
-                   hourly_keep_s=st.trend_hourly_days * 86400.0, clock=clock)
+        return cls(resolve_path(cfg, cfg.store.state_dir), **store_limits(cfg.store), clock=clock)
+
+    def set_limits(self, *, max_count: int, max_bytes: int, raw_keep_s: float,
+                   hourly_keep_s: float) -> None:
+        """Snapshot retention (count, bytes) and trend ages (s); also on a config reload,
+        applied by the next prune / downsample."""
+        if max_count < 1 or max_bytes < 1:
+            raise ValueError("store max_count and max_bytes must be >= 1")
+        with self._lock:
+            self.max_count = int(max_count)
+            self.max_bytes = int(max_bytes)
+            self.raw_keep_s = float(raw_keep_s)
+            self.hourly_keep_s = float(hourly_keep_s)
 
     @property
     def outbox_path(self) -> Path:

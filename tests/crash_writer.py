@@ -50,24 +50,28 @@ def trend_writer(state_dir: str, started, done) -> None:
 
 
 def outbox_writer(path: str, started, done, acked) -> None:
-    """Enqueue message ``i`` (msg_id ``m<i>``); acknowledge every third one two steps later
-    (as the link does when a PUBACK comes). ``acked[i]`` is set after the ack returned."""
-    from agent.outbox import Kind, Outbox
+    """Enqueue messages ``i`` (msg_id ``m<i>``) alone or 2-3 in one ``enqueue_many`` (as the
+    daemon queues one capture's), ``started``/``done`` moving by the whole batch; acknowledge
+    every third one two messages later (as the link does when a PUBACK comes). ``acked[i]``
+    is set after the ack returned."""
+    from agent.outbox import Kind, NewMessage, Outbox
 
     ob = Outbox(path, max_bytes=1 << 30)
     while True:
-        i = started.value + 1
-        started.value = i
-        ob.enqueue("skv/plant1/p-201/events", json.dumps({"id": f"m{i}", "i": i}).encode(),
-                   kind=Kind.KEPT, msg_id=f"m{i}")
-        done.value = i
-        j = i - 2
-        if j > 0 and j % 3 == 0:
-            seq = _seq_of(ob, f"m{j}")
-            if seq is not None:
-                acked[j] = 1  # "ack in progress": the parent allows it either way
-                ob.ack(seq, f"m{j}")
-                acked[j] = 2
+        first = started.value + 1
+        last = first + first % 3  # batches of 1, 2 or 3
+        started.value = last
+        ob.enqueue_many([NewMessage("skv/plant1/p-201/events",
+                                    json.dumps({"id": f"m{i}", "i": i}).encode(), Kind.KEPT,
+                                    msg_id=f"m{i}") for i in range(first, last + 1)])
+        done.value = last
+        for j in range(first - 2, last - 1):
+            if j > 0 and j % 3 == 0:
+                seq = _seq_of(ob, f"m{j}")
+                if seq is not None:
+                    acked[j] = 1  # "ack in progress": the parent allows it either way
+                    ob.ack(seq, f"m{j}")
+                    acked[j] = 2
         time.sleep(0.005)  # a busy agent's rate, so the delivery check stays a few hundred rows
 
 

@@ -437,3 +437,53 @@ def test_rate_of_change_history_restarts_after_a_transient():
         engine, b, a = step(engine, b, v, op, float(i), CFG, BCFG)
         events += [e for e in a.events if e.scope == "feature"]
     assert events == []
+
+
+
+def _restart_sequence(repaired: bool):
+    """Through monitor_step: learn, a stage-4 bearing at danger, a stop, four captures after the restart."""
+    import dataclasses
+    from pathlib import Path
+
+    from agent.config import load_config
+    from agent.model import Capture
+    from agent.monitor import initial_state, monitor_step
+    from agent.simulator import BearingDefect, Faults, OperatingPoint, SimBearing, SimMachine, synthesize
+
+    cfg = load_config(Path(__file__).resolve().parents[1] / "config" / "demo-skid.toml")
+    cfg = dataclasses.replace(cfg, baseline=dataclasses.replace(cfg.baseline, learn_captures=8))
+    machine = SimMachine(bearings=(SimBearing("pump drive end", 9, 22.225, 80.0),))
+    run, stop = OperatingPoint(speed_hz=24.6, line_hz=49.85), OperatingPoint(running=False)
+    worn = Faults(bearings=(BearingDefect("pump drive end", "outer", 3.0, stage=4, tone_mm_s=0.0),))
+    after = Faults() if repaired else worn
+    seq = [(run, Faults())] * 11 + [(run, worn)] * 3 + [(stop, Faults())] * 2 + [(run, after)] * 4
+    ms, out = None, []
+    for i, (point, faults) in enumerate(seq):
+        x, _ = synthesize(machine, point, faults, 25600.0, 32768, seed=(5, i))
+        cap = Capture(x, 25600.0, t0_utc_s=1.8e9 + 3600 * i, seq=i, channel="pump DE horizontal")
+        ms = ms or initial_state(cfg, cap.t0_utc_s)
+        r, ms = monitor_step(ms, (cap,), cfg)
+        out.append(r)
+    return out
+
+
+def test_after_a_stop_the_restart_is_not_shown_at_the_alarm_level_from_before():
+    # the demo's repair: danger (peak acceleration of a stage-4 bearing), stopped, bearing replaced,
+    # restarted. The first running capture is a start-up transient (not judged); it used to show
+    # "stopped -> danger (acc_peak_g)" from the feature alarm left over from before the stop.
+    out = _restart_sequence(repaired=True)
+    states = [r.state for r in out]
+    assert states[9:12] == [MachineState.NORMAL] * 3 and states[12:14] == [MachineState.DANGER] * 2
+    assert states[14:16] == [MachineState.STOPPED] * 2
+    cleared = [e for e in out[14].events if e["event"] == "alarm"]
+    assert "acc_peak_g" in {e["feature"] for e in cleared} and {e["state"] for e in cleared} == {"normal"}
+    assert states[16:] == [MachineState.NORMAL] * 4
+    assert "capture not judged: started from stopped" in out[16].reason
+
+
+def test_a_fault_still_there_after_a_restart_is_raised_again_by_persistence():
+    out = _restart_sequence(repaired=False)
+    states = [r.state for r in out]
+    # the start is a transient (not judged); then 2 of the last 3 judged captures above danger raise it
+    assert states[16:] == [MachineState.NORMAL, MachineState.NORMAL, MachineState.DANGER, MachineState.DANGER]
+    assert "at danger level" in out[18].reason

@@ -262,3 +262,50 @@ def test_simulated_pump_skid_bearing_faults_are_called():
         assert found and found[0].code == CODES[defect], (defect, found)
     healthy, _ = synthesize(machine, point, Faults(), FS, 65536, seed=21)
     assert diagnose_bearings(healthy, FS, 24.6, (SPEC,), st) == ()
+
+
+# the demo skid's two bearings (config/demo-skid.toml): motor BPFI 4.963X ≈ 1.53 × pump BPFO 3.250X,
+# so 2 × motor BPFI lies about 1 % from 3 × pump BPFO once the pump's 1.2 % slip is in
+_PUMP_DE = ("pump drive end", 9, 22.225, 80.0)
+_MOTOR_DE = ("motor drive end", 8, 17.46, 72.5)
+
+
+def _two_bearing_skid(defects, speed_hz, seed):
+    from agent.simulator import BearingDefect, Faults, OperatingPoint, Resonance, SimBearing, SimMachine, synthesize
+
+    machine = SimMachine(bearings=(SimBearing(*_PUMP_DE), SimBearing(*_MOTOR_DE)), structure=Resonance(160.0, 0.05, 3.0))
+    faults = Faults(bearings=tuple(BearingDefect(b, d, g, slip_frac=0.012) for b, d, g in defects))
+    x, _ = synthesize(machine, OperatingPoint(speed_hz=speed_hz, line_hz=2 * speed_hz / 0.987), faults, FS, 65536,
+                      seed=seed)
+    return x
+
+
+def test_one_defect_is_not_reported_again_on_another_bearing_of_the_shaft():
+    # before the bearings competed, the pump's BPFO harmonics gave the motor a "BPFI" family
+    # (2x and 4x BPFI on 3x and 6x BPFO) in 4 of these 16 captures, and a motor inner-race defect
+    # gave the pump a "BPFI" (its ±1X sidebands) in all of them
+    specs = (spec_from_geometry(*_PUMP_DE), spec_from_geometry(*_MOTOR_DE))
+    st = BearingSettings(line_hz=50.0)
+    for speed in (19.0, 24.6):
+        for seed in range(4):
+            for g in (0.05, 0.25):
+                x = _two_bearing_skid([("pump drive end", "outer", g)], speed, seed)
+                found = diagnose_bearings(x, FS, speed, specs, st)
+                assert [(f.component, f.code) for f in found] == [("pump drive end", "bearing_outer_race")], \
+                    (speed, seed, g, [(f.component, f.code, f.evidence) for f in found])
+            x = _two_bearing_skid([("motor drive end", "inner", 0.05)], speed, seed)
+            found = diagnose_bearings(x, FS, speed, specs, st)
+            assert [(f.component, f.code) for f in found] == [("motor drive end", "bearing_inner_race")], \
+                (speed, seed, [(f.component, f.code) for f in found])
+
+
+def test_defects_on_two_bearings_of_one_shaft_are_both_called():
+    specs = (spec_from_geometry(*_PUMP_DE), spec_from_geometry(*_MOTOR_DE))
+    st = BearingSettings(line_hz=50.0)
+    for speed, seed in ((19.0, 1), (24.6, 2)):
+        x = _two_bearing_skid([("pump drive end", "outer", 0.1), ("motor drive end", "inner", 0.1)], speed, seed)
+        found = {f.component: f for f in diagnose_bearings(x, FS, speed, specs, st)}
+        assert found["pump drive end"].code == "bearing_outer_race" and found["pump drive end"].extra["called"]
+        assert found["motor drive end"].code == "bearing_inner_race" and found["motor drive end"].extra["called"]
+        # the motor's family is its own: BPFI within the 2 % slip band of 4.963X (agent.kinematics)
+        assert found["motor drive end"].extra["order"] == pytest.approx(4.963 * (1 - 0.012), rel=0.02)

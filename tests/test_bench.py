@@ -39,7 +39,8 @@ def test_quick_run_prints_the_figures(tmp_path):
     text = p.stdout
     for needle in ("Machine:", "25600 Hz × 65536", "51200 Hz × 65536", "bare rfft ms", "real-time factor",
                    "Per-stage breakdown", "`pipeline.analyse_capture`", "÷ bare import", "Start-up to the first capture",
-                   "outbox durable enqueue", "msg/s", "trend database insert", "rows/s", "## Replay",
+                   "outbox durable enqueue", "msg/s", "queue 20000 deep", "one capture (4 messages) per transaction",
+                   "trend database insert", "rows/s", "## Replay",
                    "Envelope analysis with band selection", "bearing stage's bands"):
         assert needle in text, f"{needle!r} missing from the output"
     assert out.read_text(encoding="utf-8").strip() == text.strip()
@@ -55,3 +56,6 @@ def test_quick_run_prints_the_figures(tmp_path):
     assert svc["soak_captures"] >= 20
     st = fig["storage"]
     assert st["outbox_enqueue_msg_s"] > 0 and st["outbox_drain_msg_s"] > 0 and st["trend_insert_rows_s"] > 0
+    assert st["outbox_deep_filled"] == st["outbox_deep_queue"] == 20_000
+    assert all(st[f"outbox_{k}_msg_s"] > 0 and st[f"outbox_{k}_cpu_us"] > 0
+               for k in ("enqueue", "enqueue_deep", "batch", "batch_deep"))

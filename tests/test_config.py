@@ -8,7 +8,7 @@ from pathlib import Path
 
 import pytest
 
-from agent.config import load_config, parse_config
+from agent.config import changed_keys, default_config, load_config, parse_config, with_keys_from
 from agent.errors import ConfigError
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -92,3 +92,20 @@ def test_check_config_command_exit_codes(tmp_path):
     res = subprocess.run([sys.executable, "-m", "agent", "check-config", str(bad)], capture_output=True, text=True, cwd=ROOT)
     assert res.returncode == 2
     assert "mqtt.port" in res.stderr and "mqtt.hots: unknown key (did you mean 'host'?)" in res.stderr
+
+
+def test_changed_keys_and_with_keys_from():
+    import dataclasses as dc
+
+    a = default_config()
+    b = dc.replace(a, mqtt=dc.replace(a.mqtt, host="broker", outbox_max_mb=2.0),
+                   store=dc.replace(a.store, state_dir="s2"),
+                   source=dc.replace(a.source, synthetic=dc.replace(a.source.synthetic, seed=5)),
+                   machine=dc.replace(a.machine, speed_rpm=(500.0, 1500.0)))
+    assert changed_keys(a, a) == ()
+    assert changed_keys(a, b) == ("source.synthetic.seed", "machine.speed_rpm", "store.state_dir",
+                                  "mqtt.host", "mqtt.outbox_max_mb")
+    c = with_keys_from(b, a, ["mqtt.host", "store.state_dir", "source.synthetic.seed"])
+    assert c.mqtt.host == a.mqtt.host and c.mqtt.outbox_max_mb == 2.0
+    assert c.store.state_dir == "state" and c.source.synthetic.seed == 1
+    assert changed_keys(a, c) == ("machine.speed_rpm", "mqtt.outbox_max_mb")

@@ -157,3 +157,64 @@ def test_reload_rejects_invalid_config_and_keeps_old(tmp_path):
     d._reload()
     assert d.health.reload_failures == 1 and d.cfg is cfg
     assert "reload rejected" in d.health.last_error
+
+
+def test_reload_applies_what_it_can_and_keeps_the_rest_running(tmp_path, mqtt_broker, capsys):
+    """A reload carries retention, the outbox bound and alarm settings into the running
+    service; the asset tag (a topic level), the keepalive and the state directory keep their
+    running values, named once in the log, in health and in the status."""
+    path = write_config(tmp_path, mqtt_broker.port)
+    original = path.read_text()
+    d, _ = run_daemon(load_config(path), [1.0])
+    d._open_edges()
+    try:
+        assert d.store.max_count == 500 and d.link.outbox.max_bytes == 16 * 1024 * 1024
+        edited = (original.replace(f'state_dir = "{tmp_path / "state"}"',
+                                   f'state_dir = "{tmp_path / "elsewhere"}"\nsnapshot_max_count = 7\ntrend_raw_days = 3.0')
+                  .replace(f"port = {mqtt_broker.port}", f"port = {mqtt_broker.port}\nkeepalive_s = 45\noutbox_max_mb = 1.0")
+                  .replace('tag = "P-201"', 'tag = "P-202"')
+                  .replace("alert_ratio = 2.0", "alert_ratio = 2.5"))
+        path.write_text(edited)
+        capsys.readouterr()
+        d._reload()
+        log = capsys.readouterr().err.splitlines()
+        # applied while running
+        assert d.store.max_count == 7 and d.store.raw_keep_s == 3 * 86400.0
+        assert d.link.outbox.max_bytes == 1024 * 1024
+        assert d.cfg.alarms.alert_ratio == 2.5
+        # read only at start: the running values stay, and say so
+        assert d.cfg.asset.tag == "P-201" and d.cfg.mqtt.keepalive_s == 30
+        assert d.cfg.store.state_dir == str(tmp_path / "state") and d.store.state_dir == tmp_path / "state"
+        assert d.link.topics.base == BASE
+        pending = ["asset.tag", "store.state_dir", "mqtt.keepalive_s"]
+        values = d.health.values(d.mono())
+        assert values["restart_needed"] is True and values["restart_needed_keys"] == pending
+        assert d.status_text().endswith("restart needed for " + ", ".join(pending))
+        warned = [line for line in log if "event=reload_restart_needed" in line]
+        assert len(warned) == 1 and warned[0].startswith("level=warning ")
+        assert "sections=asset,store,mqtt keys=asset.tag,store.state_dir,mqtt.keepalive_s" in warned[0]
+        applied = [line for line in log if "event=reload " in line][0]
+        assert "applied=alarms.alert_ratio,store.snapshot_max_count,store.trend_raw_days,mqtt.outbox_max_mb" in applied
+        # the same file again: the same keys still wait for the restart
+        d._reload()
+        assert d.health.restart_needed_keys == tuple(pending)
+        # the running values back in the file: nothing waits
+        path.write_text(original)
+        d._reload()
+        assert d.health.restart_needed_keys == () and "restart" not in d.status_text()
+        assert d.store.max_count == 500 and d.cfg.alarms.alert_ratio == 2.0
+        assert d.health.reloads == 3
+    finally:
+        d.shutdown()
+
+
+def test_reload_without_mqtt_ignores_mqtt_keys(tmp_path):
+    """Run with MQTT off (--no-mqtt): [mqtt] changes do not call for a restart; state_dir does."""
+    path = write_config(tmp_path, 1)
+    d, _ = run_daemon(load_config(path), [1.0], use_mqtt=False)
+    path.write_text(path.read_text().replace("port = 1", "port = 2")
+                    .replace('tag = "P-201"', 'tag = "P-202"')
+                    .replace(f'state_dir = "{tmp_path / "state"}"', f'state_dir = "{tmp_path / "other"}"'))
+    d._reload()
+    assert d.health.restart_needed_keys == ("store.state_dir",)
+    assert d.cfg.mqtt.port == 2 and d.cfg.asset.tag == "P-202"

@@ -200,3 +200,41 @@ def test_baseline_ratio_replaces_the_iso_level():
     grown = [x for x in diagnose(ctx_of(peaks, baseline_ratios={"order_1x_mm_s": 3.0})) if x.code == "unbalance"]
     assert grown and grown[0].confidence >= HIGH_CONFIDENCE
     assert any(e.get("metric") == "1X / baseline" for e in grown[0].evidence)
+
+
+def test_floor_excess_grades_a_floor_finding_not_the_overall_velocity():
+    # a cavitation floor is graded on how far it stands beyond the rule's sure level (×4 = +12 dB → alert),
+    # not on the overall velocity (zone A here), which lies below the floor's band
+    def cav(excess_db, conf=0.6):
+        return Finding(code="cavitation", confidence=conf, extra={"floor_excess_db": excess_db})
+
+    assert severity_of(cav(-3.0), vel_rms_mm_s=1.0)[0] == Severity.INFO
+    assert severity_of(cav(4.0), vel_rms_mm_s=1.0)[0] == Severity.WATCH
+    sev, why = severity_of(cav(15.0), vel_rms_mm_s=1.0)
+    assert sev == Severity.ALERT and any("+15.0 dB" in w for w in why)
+    assert severity_of(cav(15.0, conf=0.3), vel_rms_mm_s=1.0)[0] <= Severity.WATCH  # a guess stays a guess
+    out = advise([cav(4.0)], vel_rms_mm_s=1.0)[0]
+    assert out.urgency == "plan" and "high-frequency floor stands +4.0 dB" in out.extra["why"]
+
+
+def test_cavitation_that_lasts_is_raised_to_alert():
+    from agent.advice import PERSISTENCE, persisting
+
+    hold_s = PERSISTENCE["cavitation"][0]
+    cav = advise([Finding(code="cavitation", confidence=0.6, extra={"floor_excess_db": 4.0})], vel_rms_mm_s=1.0)[0]
+    assert cav.severity == Severity.WATCH
+    spells, sev = (), []
+    # captures every 2 h: shown, shown, missed once, shown (6 h after the first), shown, missed twice, shown
+    pattern = [True, True, False, True, True, False, False, True]
+    for i, shown in enumerate(pattern):
+        t = 1e9 + 7200.0 * i
+        out, spells = persisting((cav,) if shown else (), {"cavitation"} if shown else set(), spells, t)
+        sev.append(out[0].severity if out else None)
+    W, A = Severity.WATCH, Severity.ALERT
+    assert hold_s == 6 * 3600.0
+    assert sev == [W, W, None, A, A, None, None, W]  # one miss keeps the clock; two restart it
+    out, _ = persisting((cav,), {"cavitation"}, (("cavitation", 1e9, 0),), 1e9 + hold_s)
+    assert out[0].urgency == "within_days" and "shown for 6.0 h without a break" in out[0].extra["why"]
+    # other findings are left alone
+    other = Finding(code="unbalance", confidence=0.9, severity=Severity.WATCH)
+    assert persisting((other,), {"unbalance"}, (), 1e9) == ((other,), ())

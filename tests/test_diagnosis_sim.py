@@ -77,3 +77,67 @@ def test_analyze_prints_accounted_table_and_findings(tmp_path):
     out = human.stdout
     assert "Accounted peaks" in out and "vane pass" in out and "misalignment" in out
     assert "do:" in out and "when:" in out and "lockout/tagout" in out
+
+
+# ───────────────────────────── cavitation beside a bearing defect ─────────────────────────────
+
+
+def _demo_skid_capture(faults, seed, speed_hz=24.6):
+    """One 2.56 s capture of the demo skid (replay/scenarios/demo.toml machine) through the pipeline.
+
+    The previous capture's speed is passed, as the monitor does while the machine runs steadily.
+    """
+    from agent.config import load_config
+    from agent.simulator import OperatingPoint, Resonance, SimBearing, SimMachine, synthesize
+    from agent.speed import SpeedEstimate
+
+    cfg = load_config(ROOT / "config" / "demo-skid.toml")
+    machine = SimMachine(bearings=(SimBearing("pump drive end", 9, 22.225, 80.0),
+                                   SimBearing("motor drive end", 8, 17.46, 72.5)),
+                         vane_pass_mm_s=(0.45, 0.15), line_mm_s=(0.03, 0.25), floor_mm_s=0.08, noise_g=0.003,
+                         structure=Resonance(160.0, 0.05, 3.0))
+    x, _ = synthesize(machine, OperatingPoint(speed_hz=speed_hz, line_hz=2 * speed_hz / 0.987), faults, 25600.0,
+                      65536, seed=seed)
+    previous = SpeedEstimate(speed_hz=speed_hz, confidence=1.0, found=True)
+    return {f.code: f for f in analyse_capture(Capture(x, 25600.0), cfg, previous_speed=previous).findings}
+
+
+def _outer(stage, impulse_g):
+    from agent.simulator import BearingDefect
+
+    tone = {1: 0.0, 2: 0.3, 3: 0.7, 4: 1.6}[stage]
+    return BearingDefect("pump drive end", "outer", impulse_g, stage=stage, tone_mm_s=tone, slip_frac=0.012)
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_cavitation_beside_a_called_bearing_defect_is_reported_and_graded(seed):
+    from agent.model import Severity
+    from agent.simulator import Faults
+
+    # the demo's episode: cavitation (0.4-0.9 g in 1-10 kHz) while the pump DE outer race is at stage 2
+    strong = _demo_skid_capture(Faults(cavitation_g=0.5, bearings=(_outer(2, 0.7),)), seed)
+    assert strong["bearing_outer_race"].extra["called"]
+    cav = strong["cavitation"]
+    assert cav.confidence >= 0.5 and cav.severity == Severity.ALERT and cav.urgency == "within_days"
+    assert cav.extra["floor_excess_db"] >= 12.0 and "high-frequency floor stands" in cav.extra["why"]
+    # weaker cavitation, no bearing defect: shown, graded watch (plan)
+    mild = _demo_skid_capture(Faults(cavitation_g=0.12), seed)["cavitation"]
+    assert mild.confidence >= 0.5 and mild.severity == Severity.WATCH and 0.0 <= mild.extra["floor_excess_db"] < 12.0
+
+
+@pytest.mark.parametrize("stage,impulse_g", [(1, 0.25), (2, 0.7), (3, 1.6), (4, 3.0)])
+def test_a_bearing_defect_alone_is_not_taken_for_cavitation(stage, impulse_g):
+    from agent.simulator import Faults
+
+    found = _demo_skid_capture(Faults(bearings=(_outer(stage, impulse_g),)), 3)
+    assert found["bearing_outer_race"].extra["called"]
+    cav = found.get("cavitation")
+    # its ringing lifts one octave (stage 1-3) or, at stage 4, a floor less even than cavitation's
+    assert cav is None or cav.confidence < 0.5, cav
+
+
+@pytest.mark.parametrize("seed", [4, 5])
+def test_healthy_demo_skid_shows_no_cavitation(seed):
+    from agent.simulator import Faults
+
+    assert "cavitation" not in _demo_skid_capture(Faults(), seed)

@@ -16,7 +16,7 @@ pytest.importorskip("paho.mqtt.client", reason="paho-mqtt is a runtime dependenc
 
 from agent.errors import PublishError
 from agent.model import Finding, MachineState, Severity
-from agent.mqtt import (MqttLink, MqttSettings, Topics, encode, event_payload,
+from agent.mqtt import (MqttLink, MqttSettings, Outgoing, Topics, encode, event_payload,
                         findings_payload, health_payload, measurements_payload, read_password,
                         state_payload)
 from agent.outbox import Kind, Outbox
@@ -115,6 +115,33 @@ def test_documented_topics_arrive(tmp_path, mqtt_broker):
     assert link.outbox.stats().depth == 0
     avail = sub.collect(1, 3, topic=f"{BASE}/availability")
     assert avail and avail[0].payload == b"offline"  # clean stop says offline too
+    sub.close(), late.close()
+
+
+def test_send_many_one_capture_in_order(tmp_path, mqtt_broker):
+    """One capture's messages queued together (one outbox transaction) arrive in that order,
+    with their ids, retain flags and the outbox emptied by the PUBACKs."""
+    sub = Subscriber(mqtt_broker, f"{BASE}/+")
+    link = _link(tmp_path, mqtt_broker)
+    now = time.time()
+    ev = event_payload("state_change", t_utc_s=now, state="alert", previous_state="normal")
+    out = [Outgoing("state", state_payload("alert", now, "1X up", "check", "soon", t_utc_s=now),
+                    Kind.KEPT, retain=True, replace_key="state"),
+           Outgoing("measurements", measurements_payload({"vel_rms_mm_s": 3.1}, t_utc_s=now,
+                                                         capture_seq=9, state="alert"), Kind.PERIODIC),
+           Outgoing("events", ev, Kind.KEPT),
+           Outgoing("findings", findings_payload([], t_utc_s=now, state="alert"), Kind.KEPT,
+                    retain=True, replace_key="findings")]
+    seqs = link.send_many(out)  # queued before the link even starts: on disk, sent once connected
+    assert seqs == sorted(seqs) and len(set(seqs)) == 4 and link.outbox.stats().depth == 4
+    link.start()
+    got = [m for m in sub.collect(5, 10) if not m.topic.endswith("/availability")]
+    assert [m.topic.rsplit("/", 1)[1] for m in got] == ["state", "measurements", "events", "findings"]
+    assert json.loads(got[2].payload)["id"] == ev["id"]
+    late = Subscriber(mqtt_broker, f"{BASE}/findings")  # retained: there for a later client
+    assert late.collect(1, 3)[0].retain
+    link.stop()
+    assert link.outbox.stats().depth == 0
     sub.close(), late.close()
 
 

@@ -148,7 +148,7 @@ def test_outbox_survives_kills_and_delivers_everything(ctx, tmp_path, mqtt_broke
     path = tmp_path / "state" / "outbox.sqlite"
     acked = ctx.Array("b", 100_000, lock=False)
 
-    def present() -> set[int]:
+    def present(done: int) -> set[int]:
         db = sqlite3.connect(str(path))
         try:
             rows = {int(m[1:]) for (m,) in db.execute("SELECT msg_id FROM outbox")}
@@ -162,12 +162,13 @@ def test_outbox_survives_kills_and_delivers_everything(ctx, tmp_path, mqtt_broke
     unsure: set[int] = set()
 
     def check(s0, started, done):
-        if started > done:
-            unsure.add(started)  # the enqueue in progress at the kill: either way is right
+        in_flight = set(range(max(s0, done) + 1, started + 1))  # the batch being written at the kill
+        unsure.update(in_flight)  # either way is right, but all of it or none
         if not path.exists():
             return
         _integrity(path)
-        rows = present()
+        rows = present(done)
+        assert rows & in_flight in (set(), in_flight), (in_flight, rows & in_flight)
         for i in range(1, started + 1):
             if i in unsure or acked[i] == 1:  # or its ack was in progress
                 continue
@@ -175,7 +176,7 @@ def test_outbox_survives_kills_and_delivers_everything(ctx, tmp_path, mqtt_broke
         assert max(rows, default=0) <= started
 
     n = _kill_loop(ctx, cw.outbox_writer, (str(path),), check, seed=SEED + 3, extra=(acked,))
-    pending = present()
+    pending = present(n)
     assert len(pending) > 10
     assert not list(path.parent.glob("*.corrupt-*"))  # never set aside as corrupt
     # deliver what is pending through the real link to a real broker

@@ -226,23 +226,79 @@ def test_replay_source_reads_other_formats(tmp_path):
     assert np.std(a.accel_ms2) == pytest.approx(0.1 * 9.80665, rel=0.05)  # g → m/s² (ISO 80000-3)
 
 
-def test_truth_comparison_matches_changes_of_the_right_kind():
+def _story_step(seq, t, state, truth, *findings):
+    from agent.replay_cmd import StepView
+
+    return StepView(seq, t, "", state, "dropout: 1127 zero samples" if state == "sensor_fault" else "", 1.0, "A",
+                    3.0, 3.0, 24.6, tuple(findings), truth)
+
+
+def test_truth_comparison_counts_only_findings_that_name_the_simulated_fault():
+    from agent.model import Finding, Severity
     from agent.replay_cmd import ReplayResult, truth_comparison
 
+    def f(code, component, sev=Severity.WATCH):
+        return Finding(code=code, confidence=0.8, severity=sev, component=component, stage=2)
+
+    outer = {"running": True, "bearings": [{"bearing": "pump DE", "defect": "outer", "stage": 2}], "faults": []}
+    healthy = {"running": True, "bearings": [], "faults": []}
+    sensor = {**outer, "sensor": [{"kind": "intermittent"}]}
     ev = [
         {"t0_utc_s": 100.0, "utc": "2026-01-01T00:01:40Z", "kind": "bearing", "phase": "begins",
-         "bearing": "pump DE", "what": "outer defect on bearing 'pump DE' begins"},
-        {"t0_utc_s": 500.0, "utc": "2026-01-01T00:08:20Z", "kind": "sensor", "phase": "begins",
+         "bearing": "pump DE", "defect": "outer", "what": "outer defect on bearing 'pump DE' begins"},
+        {"t0_utc_s": 450.0, "utc": "2026-01-01T00:07:30Z", "kind": "sensor", "phase": "begins",
          "what": "sensor fault (intermittent) begins"},
+        {"t0_utc_s": 650.0, "utc": "2026-01-01T00:10:50Z", "kind": "sensor", "phase": "ends",
+         "what": "sensor fault (intermittent) ends"},
+        {"t0_utc_s": 1000.0, "utc": "2026-01-01T00:16:40Z", "kind": "bearing", "phase": "ends",
+         "bearing": "pump DE", "defect": "outer", "what": "outer defect on bearing 'pump DE' ends (repaired)"},
     ]
-    changes = [
-        {"t0_utc_s": 200.0, "seq": 1, "kind": "finding", "code": "bearing_inner_race", "severity": "watch",
-         "title": "motor DE: inner race defect"},  # another bearing: not an answer
-        {"t0_utc_s": 300.0, "seq": 2, "kind": "finding", "code": "bearing_outer_race", "severity": "watch",
-         "title": "pump DE: outer race defect"},
-        {"t0_utc_s": 600.0, "seq": 3, "kind": "state", "from": "normal", "to": "alert", "reason": "x"},
-        {"t0_utc_s": 700.0, "seq": 4, "kind": "state", "from": "alert", "to": "sensor_fault", "reason": "dropout"},
+    steps = [
+        _story_step(0, 0.0, "normal", healthy),
+        _story_step(1, 200.0, "normal", outer, f("bearing_inner_race", "motor DE")),  # another bearing
+        _story_step(2, 300.0, "alert", outer, f("bearing_inner_race", "pump DE")),  # the right bearing, wrong defect
+        _story_step(3, 400.0, "alert", outer, f("bearing_outer_race", "pump DE")),  # the detection
+        _story_step(4, 500.0, "sensor_fault", sensor),
+        _story_step(5, 600.0, "sensor_fault", sensor),
+        _story_step(6, 700.0, "alert", outer, f("bearing_outer_race", "pump DE")),
+        _story_step(7, 1000.0, "stopped", {"running": False, "bearings": [], "faults": []}),
+        _story_step(8, 1100.0, "alert", healthy, f("bearing_inner_race", "motor DE", Severity.ALERT)),
     ]
-    lines = truth_comparison(ReplayResult(changes=changes), ev)
-    assert "bearing_outer_race" in lines[0] and "after   0.1 h" in lines[0]
-    assert "sensor_fault: dropout" in lines[1]
+    changes = [{"t0_utc_s": 300.0, "seq": 2, "kind": "state", "from": "normal", "to": "alert", "reason": "floor"},
+               {"t0_utc_s": 1100.0, "seq": 8, "kind": "state", "from": "stopped", "to": "alert", "reason": "x"}]
+    lines = truth_comparison(ReplayResult(steps=steps, changes=changes), ev)
+    text = "\n".join(lines)
+    # 300 s after the event (0.1 h), not the wrong-defect call 200 s after it
+    assert "begins" in lines[0] and "found after   0.1 h: [watch] bearing_outer_race, pump DE, stage 2" in lines[0]
+    assert "in 2 of 4 captures" in lines[0]  # running captures while it lasted: 200, 300, 400, 700 s
+    assert "found after   0.0 h: state sensor_fault (dropout" in lines[1]
+    assert "state back to alert after   0.0 h" in lines[2]
+    assert "cleared after   0.0 h (machine stopped)" in lines[3]
+    # state changes are listed with what was simulated; the one on a healthy machine is a false alarm
+    assert "normal -> alert: floor  [sim: pump DE outer race st.2]" in text
+    assert "stopped -> alert: x  [sim: healthy]" in text and "1 while the simulated machine was healthy" in text
+    # the wrong calls, apart: inner race on the motor DE twice (raised twice), on the pump DE once
+    other = lines[lines.index("Other findings (naming no fault simulated at the time: wrong calls):") + 1:]
+    assert other[0].split()[:2] == ["bearing_inner_race", "motor"] and "in   2 captures (raised 2x)" in other[0]
+    assert "up to alert" in other[0]
+    assert other[1].split()[:3] == ["bearing_inner_race", "pump", "DE"] and "in   1 captures" in other[1]
+
+
+def test_truth_comparison_says_when_a_fault_is_not_found():
+    from agent.model import Finding, Severity
+    from agent.replay_cmd import ReplayResult, truth_comparison
+
+    cav = {"running": True, "bearings": [], "faults": ["cavitation"], "cavitation_g": 0.5,
+           "resonances_hz": [160.0, 3300.0]}
+    ev = [{"t0_utc_s": 0.0, "utc": "2026-01-01T00:00:00Z", "kind": "cavitation", "phase": "begins",
+           "what": "cavitation begins"}]
+    res_ = Finding(code="resonance", confidence=0.6, severity=Severity.WATCH, component="",
+                   evidence=({"metric": "hump centre, Hz", "value": 166.0},))
+    vp = Finding(code="vane_pass", confidence=0.8, severity=Severity.WATCH, component="pump")
+    steps = [_story_step(i, 100.0 * i, "normal", cav, res_, vp) for i in range(3)]
+    lines = truth_comparison(ReplayResult(steps=steps), ev)
+    assert "NOT FOUND in 3 captures (shown instead: resonance, vane_pass (pump))" in lines[0]
+    text = "\n".join(lines)
+    assert "vane_pass" in text.split("wrong calls):")[1].splitlines()[1]
+    # the simulated machine has a 160 Hz mode: a resonance near it is true, not a wrong call
+    assert "(resonance in 3 captures sits at a natural frequency of the simulated machine" in text

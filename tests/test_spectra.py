@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 import pytest
 from scipy import signal
@@ -143,3 +145,86 @@ def test_bad_arguments_raise_value_error():
         SpectrumPlan.build(FS, 4096, window="kaiser")
     with pytest.raises(ValueError, match="shorter"):
         accel_spectrum(np.ones(100), SpectrumPlan.build(FS, 4096))
+
+
+@pytest.mark.parametrize("n_samples", [65536, 121265, 1004, 300])
+def test_floor_spectrum_equals_scipy_welch(n_samples):
+    # Reference library: scipy.signal.welch with a periodic 4-term Blackman-Harris window,
+    # "spectrum" scaling, 50 % overlap, mean removed per segment — line by line.
+    from agent.pipeline import floor_spectrum
+
+    x = np.random.default_rng(11).normal(0, 1.0, n_samples) + tone(FS, 777.7, 3.0, n_samples)
+    ours = floor_spectrum(x, FS)
+    n = ours.nperseg
+    win = signal.get_window("blackmanharris", n, fftbins=True)
+    f, p = signal.welch(x, FS, window=win, nperseg=n, noverlap=n // 2, scaling="spectrum", detrend="constant")
+    assert n == min(16384, max(64, n_samples // 4))
+    np.testing.assert_allclose(ours.f_hz, f, rtol=1e-12)
+    np.testing.assert_allclose(ours.power, p, rtol=1e-9, atol=1e-12 * p.max())
+    assert ours.enbw_bins == pytest.approx(n * np.sum(win**2) / win.sum() ** 2, rel=1e-12)
+
+
+def test_capture_spectra_computes_each_segmentation_once():
+    # Plans that cut the capture into the same segments share one spectrum, equal to scipy.signal.welch
+    # (reference library, "spectrum" scaling); a different segmentation is computed on its own.
+    from agent.spectra import CaptureSpectra
+
+    x = np.random.default_rng(2).normal(0, 1.0, N) + tone(FS, 250.0, 2.0, N)
+    spectra = CaptureSpectra(x, FS)
+    one_a = spectra.accel(SpectrumPlan.build(FS, N, lines=N // 2, overlap=0.5))  # a single segment ...
+    one_b = spectra.accel(SpectrumPlan.build(FS, N, lines=N // 2, overlap=0.0))  # ... whatever the overlap
+    assert one_a is one_b
+    _, p = signal.welch(x, FS, window="hann", nperseg=N, scaling="spectrum", detrend="constant")
+    np.testing.assert_allclose(one_a.power, p, rtol=1e-9, atol=1e-12 * p.max())
+    avg = spectra.accel(SpectrumPlan.build(FS, N, lines=4096, overlap=0.5))
+    assert avg is not one_a and avg.n_averages == 15
+    assert avg is spectra.accel(SpectrumPlan.build(FS, N, lines=4096, overlap=0.5))
+    np.testing.assert_array_equal(avg.power, accel_spectrum(x, SpectrumPlan.build(FS, N, lines=4096)).power)
+    with pytest.raises(ValueError):
+        spectra.of_samples(x[::-1])
+    with pytest.raises(ValueError):
+        spectra.accel(SpectrumPlan.build(2 * FS, N, lines=4096))
+
+
+def test_segment_powers_and_row_tones_equal_the_one_segment_path():
+    # Each row is accel_spectrum of its slice alone; tones_at_rows is tone_at row by row, bit for bit
+    # (Grandke's estimator: a 1 000.37 Hz tone reads within 0.05 line, its r.m.s. within 1 %).
+    from agent.spectra import segment_powers, segment_spectra, tones_at_rows
+
+    x = tone(FS, 1000.37, 2.0, 8192) + np.random.default_rng(4).normal(0, 0.01, 8192)
+    plan = SpectrumPlan.build(FS, 2048, lines=1024, overlap=0.75)
+    rows = segment_powers(x, plan, n_lines=120)
+    assert rows.shape == (13, 120) and not rows.flags.writeable
+    for i, row in enumerate(rows):
+        one = accel_spectrum(x[i * 512 : i * 512 + 2048], plan)
+        np.testing.assert_array_equal(row, one.power[:120])
+    ks = np.argmax(rows, axis=1)
+    f, amp = tones_at_rows(rows, ks, bin_width_hz=plan.bin_width_hz, enbw_bins=plan.figures.enbw_bins)
+    for i, sp in enumerate(segment_spectra(x, plan, n_lines=120)):
+        assert (f[i], amp[i]) == tone_at(sp, int(ks[i]))
+    assert np.all(np.abs(f - 1000.37) < 0.05 * plan.bin_width_hz) and np.allclose(amp, 2.0, rtol=0.01)
+    # at the edges (line 0 or 1) the lobe is cut and there is no interpolation, as in tone_at
+    f0, a0 = tones_at_rows(rows[:1], np.array([1]), bin_width_hz=plan.bin_width_hz, enbw_bins=1.5)
+    sp0 = segment_spectra(x, plan, n_lines=120)[0]
+    assert (f0[0], a0[0]) == tone_at(replace(sp0, enbw_bins=1.5), 1)
+
+
+@pytest.mark.parametrize("f_low_hz", [2.5, 10.0, 400.0])
+def test_velocity_floor_from_the_acceleration_floor_equals_the_direct_one(f_low_hz):
+    # noise_floor(vel) takes its running median on vel·(2πf)² = acc·10⁶: converted from the
+    # acceleration floor it must agree to rounding, at the high-pass cut too.
+    from agent.spectra import velocity_floor
+
+    x = np.random.default_rng(9).normal(0, 0.05, N) + tone(FS, 24.6, 0.3, N) + tone(FS, 147.6, 0.5, N)
+    acc = accel_spectrum(x, SpectrumPlan.build(FS, N, lines=16384))
+    vel = velocity_spectrum(acc, f_low_hz)
+    direct = noise_floor(vel)
+    shared = velocity_floor(vel, acc, noise_floor(acc))
+    np.testing.assert_allclose(shared, direct, rtol=1e-12, atol=0)
+    assert np.all((shared == 0) == (direct == 0))
+    # a noise-free tone leaves lines at the floor's clipping level: computed directly, equal bit for bit
+    clean = accel_spectrum(tone(FS, 100.0, 1.0, N), SpectrumPlan.build(FS, N, lines=16384))
+    cvel = velocity_spectrum(clean, f_low_hz)
+    np.testing.assert_array_equal(velocity_floor(cvel, clean, noise_floor(clean)), noise_floor(cvel))
+    with pytest.raises(ValueError):
+        velocity_floor(acc, vel, noise_floor(acc))

@@ -515,3 +515,27 @@ def test_analyze_says_not_found_when_nothing_turns(tmp_path):
     assert "no credible rotation" in doc["speed"]["notes"][0]
     assert doc["orders"] is None
     assert all(pk["family"] in ("", "line") for pk in doc["peaks"])
+
+
+def test_candidate_grid_match_equals_the_dense_match():
+    # The grid search works out closeness only near peaks; it must equal the dense search
+    # (every order × candidate) wherever a peak is in tolerance, and be 0 elsewhere.
+    from agent.speed import _match, _match_grid
+
+    rng = np.random.default_rng(1)
+    for _ in range(300):
+        lo = rng.uniform(1, 30)
+        hi = lo + rng.uniform(0.5, 60)
+        bin_hz = float(rng.choice([0.05, 0.2, 0.39, 0.78, 1.5]))
+        orders = np.unique(np.r_[np.arange(1.0, 11.0), rng.integers(2, 60, size=rng.integers(0, 4))].astype(float))
+        step = bin_hz / (4 * orders.max())
+        cand = np.arange(lo, hi + step, step)
+        f = np.sort(rng.uniform(0.5 * lo, 1.05 * hi * orders.max(), rng.integers(0, 40)))
+        if f.size > 3 and rng.random() < 0.3:
+            f[1] = f[0] + rng.uniform(0, 0.3)  # two peaks within one tolerance
+            f = np.sort(f)
+        pk_f = np.r_[f, np.inf]
+        i1, c1 = _match(cand, orders, pk_f, 0.6 * bin_hz, 0.001)
+        i2, c2 = _match_grid(cand, orders, pk_f, 0.6 * bin_hz, 0.001)
+        np.testing.assert_array_equal(c1, c2)
+        np.testing.assert_array_equal(np.where(c1 > 0, i1, 0), np.where(c2 > 0, i2, 0))

@@ -8,6 +8,9 @@ from __future__ import annotations
 
 import numpy as np
 
+from agent.model import Capture
+from agent.sources.calibration import Calibration
+
 
 class BlockAssembler:
     """Collects (k, channels) blocks until ``n_samples`` per channel are in.
@@ -116,3 +119,47 @@ class RateCheck:
         if span < self.min_span_s:
             return None
         return self._samples_after_first / span
+
+
+def calibrated_captures(
+    counts: np.ndarray,
+    t0_s: float,
+    flags: frozenset[str],
+    *,
+    calibration: Calibration,
+    channel_names: tuple[str, ...],
+    fs_hz: float,
+    measured_fs_hz: float | None,
+    fs_tolerance: float,
+    source_id: str,
+    seq: int,
+) -> tuple[Capture, ...]:
+    """One :class:`Capture` per channel from a block of raw ``counts`` (samples × channels).
+
+    Counts become m/s² through ``calibration``; a channel touching the
+    converter's rails is flagged ``clipped_at_source``; a host-clock rate more
+    than ``fs_tolerance`` (fraction) off the nominal ``fs_hz`` flags every
+    channel ``fs_mismatch``. A DC-coupled input reports its bias and has no
+    meaningful full scale about zero (its mean is removed).
+    """
+    if measured_fs_hz is not None and abs(measured_fs_hz / fs_hz - 1.0) > fs_tolerance:
+        flags = flags | {"fs_mismatch"}
+    cal = calibration
+    out = []
+    for i, name in enumerate(channel_names):
+        col = counts[:, i]
+        accel, bias_v = cal.to_ms2(col)
+        out.append(
+            Capture(
+                accel_ms2=accel,
+                fs_hz=fs_hz,
+                t0_utc_s=t0_s,
+                channel=name,
+                source_id=source_id,
+                seq=seq,
+                flags=flags | {"clipped_at_source"} if cal.at_rails(col) else flags,
+                full_scale_ms2=None if cal.dc_coupled else cal.full_scale_ms2,
+                bias_v=bias_v,
+            )
+        )
+    return tuple(out)

@@ -22,7 +22,7 @@ import numpy as np
 
 from agent.errors import SourceStalled, SourceUnavailable
 from agent.model import Capture
-from agent.sources.assembly import BlockAssembler, RateCheck
+from agent.sources.assembly import BlockAssembler, RateCheck, calibrated_captures
 from agent.sources.base import Source
 from agent.sources.calibration import Calibration
 from agent.sources.serial_frames import FMT_INT16, FMT_INT24, FULL_SCALE_COUNTS, FrameParser, TextLineParser
@@ -247,27 +247,10 @@ class SerialSource(Source):
         return got
 
     def _captures(self, counts: np.ndarray, t0_s: float, flags: frozenset[str]) -> tuple[Capture, ...]:
-        measured = self._rate.measured_fs_hz
-        if measured is not None and abs(measured / self.fs_hz - 1.0) > self.fs_tolerance:
-            flags = flags | {"fs_mismatch"}
-        cal = self.calibration
-        out = []
-        for i, name in enumerate(self.channel_names):
-            col = counts[:, i]
-            accel, bias_v = cal.to_ms2(col)
-            f = flags | {"clipped_at_source"} if cal.at_rails(col) else flags
-            out.append(
-                Capture(
-                    accel_ms2=accel,
-                    fs_hz=self.fs_hz,
-                    t0_utc_s=t0_s,
-                    channel=name,
-                    source_id=self.source_id,
-                    seq=self._seq,
-                    flags=f,
-                    full_scale_ms2=None if cal.dc_coupled else cal.full_scale_ms2,
-                    bias_v=bias_v,
-                )
-            )
+        caps = calibrated_captures(
+            counts, t0_s, flags, calibration=self.calibration, channel_names=self.channel_names,
+            fs_hz=self.fs_hz, measured_fs_hz=self._rate.measured_fs_hz, fs_tolerance=self.fs_tolerance,
+            source_id=self.source_id, seq=self._seq,
+        )
         self._seq += 1
-        return tuple(out)
+        return caps

@@ -31,7 +31,7 @@ import numpy as np
 
 from agent.errors import SourceStalled, SourceUnavailable
 from agent.model import Capture
-from agent.sources.assembly import BlockAssembler, RateCheck
+from agent.sources.assembly import BlockAssembler, RateCheck, calibrated_captures
 from agent.sources.base import Source
 from agent.sources.calibration import Calibration
 
@@ -253,27 +253,10 @@ class SoundCardSource(Source):
                 return
 
     def _captures(self, data: np.ndarray, t0_s: float, flags: frozenset[str]) -> tuple[Capture, ...]:
-        measured = self._rate.measured_fs_hz
-        if measured is not None and abs(measured / self.fs_hz - 1.0) > self.fs_tolerance:
-            flags = flags | {"fs_mismatch"}
-        cal = self.calibration
-        out = []
-        for i, name in enumerate(self.channel_names):
-            col = data[:, i]
-            accel, _ = cal.to_ms2(col)
-            f = flags | {"clipped_at_source"} if cal.at_rails(col) else flags
-            out.append(
-                Capture(
-                    accel_ms2=accel,
-                    fs_hz=self.fs_hz,
-                    t0_utc_s=t0_s,
-                    channel=name,
-                    source_id=self.source_id,
-                    seq=self._seq,
-                    flags=f,
-                    full_scale_ms2=cal.full_scale_ms2,
-                    bias_v=None,
-                )
-            )
+        caps = calibrated_captures(
+            data, t0_s, flags, calibration=self.calibration, channel_names=self.channel_names,
+            fs_hz=self.fs_hz, measured_fs_hz=self._rate.measured_fs_hz, fs_tolerance=self.fs_tolerance,
+            source_id=self.source_id, seq=self._seq,
+        )
         self._seq += 1
-        return tuple(out)
+        return caps
