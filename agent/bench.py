@@ -954,6 +954,10 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--daemon-child", nargs=4, metavar=("CONFIG", "RECORDINGS", "CAPTURES", "PACE_S"),
                     help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
+    # as the skidvib command does (agent.cli.main): the figures are those of the service
+    from agent.allocator import keep_freed_memory
+
+    keep_freed_memory()
     if args.daemon_child:
         cfg, recs, n, pace = args.daemon_child
         return daemon_child(cfg, recs, int(n), float(pace))

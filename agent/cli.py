@@ -12,6 +12,7 @@ import sys
 from pathlib import Path
 
 from agent import __version__
+from agent.allocator import keep_freed_memory
 from agent.errors import AgentError, ConfigError, InputError
 
 EXIT_OK, EXIT_ERROR, EXIT_CONFIG, EXIT_INPUT = 0, 1, 2, 3
@@ -176,6 +177,7 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    keep_freed_memory()  # every command analyses captures: no page faults per capture
     try:
         return int(args.func(args) or 0)
     except ConfigError as exc:
