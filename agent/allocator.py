@@ -23,8 +23,11 @@ import os
 #: mallopt parameter numbers (glibc <malloc.h>)
 _M_TRIM_THRESHOLD = -1
 _M_MMAP_THRESHOLD = -3
-#: blocks up to this size come from the heap (glibc's largest allowed value on 64-bit)
-MMAP_THRESHOLD_BYTES = 32 * 1024 * 1024
+#: blocks up to this size come from the heap: glibc's largest accepted value,
+#: DEFAULT_MMAP_THRESHOLD_MAX in malloc/malloc.c — 4 MiB × sizeof(long) (32 MiB)
+#: on 64-bit, 512 KiB on 32-bit (from memory of the glibc source; mallopt
+#: refuses more and the call below then reports False)
+MMAP_THRESHOLD_BYTES = 4 * 1024 * 1024 * 8 if ctypes.sizeof(ctypes.c_long) == 8 else 512 * 1024
 #: free memory at the heap top kept up to this size
 TRIM_THRESHOLD_BYTES = 128 * 1024 * 1024
 
@@ -47,6 +50,6 @@ def keep_freed_memory() -> bool:
     mallopt.argtypes = (ctypes.c_int, ctypes.c_int)
     mallopt.restype = ctypes.c_int
     ok = mallopt(_M_MMAP_THRESHOLD, MMAP_THRESHOLD_BYTES) == 1
-    ok = mallopt(_M_TRIM_THRESHOLD, TRIM_THRESHOLD_BYTES) == 1 and ok
+    ok = ok and mallopt(_M_TRIM_THRESHOLD, TRIM_THRESHOLD_BYTES) == 1
     _done = ok
     return ok

@@ -527,7 +527,7 @@ def score_bearing(
 def _lines_searched(ses: EnvelopeSpectrum, top_order: float, speed_hz: float, settings: BearingSettings) -> int:
     """How many lines of ``ses`` (from 0 Hz) the family search of one bearing can read.
 
-    The comb (:func:`_family`) reads up to ``n_harmonics`` × the highest
+    The comb (:func:`_combs`, :func:`_families`) reads up to ``n_harmonics`` × the highest
     fundamental searched, ``top_order`` × ``speed_hz`` × (1 + ``slip_tol``),
     plus about a line per harmonic order (its grid) and a few (the window
     around each harmonic); :func:`_sidebands` reads ±1X (≥ FTF) about the

@@ -287,7 +287,8 @@ class Daemon:
                 reason=str(doc.get("reason", "")),
                 mode=str(doc.get("mode", "monitor")),
                 finding_codes=tuple(doc.get("finding_codes", ())),
-                finding_spells=tuple((str(c), float(t), int(m)) for c, t, m in doc.get("finding_spells", ())),
+                # finding spells ("shown without a break") are not carried over: the agent did not
+                # watch the machine while it was down, so a spell starts again after a restart
             )
             alarm_id = doc.get("open_alarm_id")
             if isinstance(alarm_id, str) and self.ms.state in BAD_STATES:
@@ -677,7 +678,8 @@ class Daemon:
             self.next_scheduled_snapshot_mono = now + st.snapshot_every_h * 3600.0
         if "mqtt.outbox_max_mb" in keys and self.link is not None:
             self.link.outbox.set_max_bytes(int(self.cfg.mqtt.outbox_max_mb * 1024 * 1024))
-        if any(k.startswith("source.") for k in keys):
+        # the sources copy the sensor's calibration when they are built: a new one needs a new source
+        if any(k.startswith(("source.", "sensor.")) for k in keys):
             self._restart_acquisition()
 
     def status_text(self) -> str:

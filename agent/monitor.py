@@ -257,7 +257,8 @@ def quality_fault_step(ms: MonitorState, captures: tuple[Capture, ...], failed: 
         quality_problems=problems, events=events,
         analysis_doc={"quality": {c.channel: dict(v.figures) for c, v in failed}},
     )
-    return result, dataclasses.replace(ms, state=state, since_utc_s=since, reason=reason, n_captures=ms.n_captures + 1)
+    return result, dataclasses.replace(ms, state=state, since_utc_s=since, reason=reason, n_captures=ms.n_captures + 1,
+                                       finding_spells=_spells_missed(ms, t))
 
 
 def source_problem_step(ms: MonitorState, t_utc_s: float, problem: str) -> tuple[CaptureResult, MonitorState]:
@@ -275,4 +276,10 @@ def source_problem_step(ms: MonitorState, t_utc_s: float, problem: str) -> tuple
         reason=reason, action=action, urgency=urgency, analysis=None, quality_ok=False,
         quality_problems=("source",), events=events,
     )
-    return result, dataclasses.replace(ms, state=state, since_utc_s=since, reason=reason)
+    return result, dataclasses.replace(ms, state=state, since_utc_s=since, reason=reason,
+                                       finding_spells=_spells_missed(ms, t_utc_s))
+
+
+def _spells_missed(ms: MonitorState, t_utc_s: float) -> tuple[tuple[str, float, int], ...]:
+    """A capture with no judgement (bad data, no data) breaks a finding's spell like one that misses it."""
+    return persisting((), set(), ms.finding_spells, t_utc_s)[1]

@@ -218,3 +218,36 @@ def test_reload_without_mqtt_ignores_mqtt_keys(tmp_path):
     d._reload()
     assert d.health.restart_needed_keys == ("store.state_dir",)
     assert d.cfg.mqtt.port == 2 and d.cfg.asset.tag == "P-202"
+
+
+def test_reload_of_sensor_calibration_builds_a_new_source(tmp_path):
+    """The sources copy the calibration when built: a changed sensitivity restarts acquisition
+    with a source made from the new value (not the old one, which would scale every level)."""
+    path = write_config(tmp_path, 1)
+    cfg = load_config(path)
+    built: list[float] = []
+
+    def factory(c):
+        built.append(c.sensor.sensitivity_mv_per_g)
+        return ScriptedSource(c, [1.0] * 50)
+
+    d = Daemon(cfg, source_factory=factory, use_mqtt=False)
+    d.cfg = cfg
+    d._open_edges()
+    try:
+        d._restart_acquisition()
+        deadline = time.monotonic() + 20
+        while not built and time.monotonic() < deadline:
+            time.sleep(0.05)
+        assert built == [cfg.sensor.sensitivity_mv_per_g]
+        old = cfg.sensor.sensitivity_mv_per_g
+        text = path.read_text()
+        assert f"sensitivity_mv_per_g = {old}\n" in text
+        path.write_text(text.replace(f"sensitivity_mv_per_g = {old}\n", "sensitivity_mv_per_g = 10.0\n"))
+        d._reload()
+        while len(built) < 2 and time.monotonic() < deadline:
+            time.sleep(0.05)
+        assert built == [old, 10.0]
+        assert d.health.restart_needed_keys == ()
+    finally:
+        d.shutdown()

@@ -238,3 +238,14 @@ def test_cavitation_that_lasts_is_raised_to_alert():
     # other findings are left alone
     other = Finding(code="unbalance", confidence=0.9, severity=Severity.WATCH)
     assert persisting((other,), {"unbalance"}, (), 1e9) == ((other,), ())
+
+
+def test_captures_without_judgement_break_a_spell():
+    """Bad or missing data is not 'shown without a break': two such captures end the spell."""
+    from agent.monitor import MonitorState, source_problem_step
+
+    ms = MonitorState(finding_spells=(("cavitation", 1e9, 0),))
+    _, ms1 = source_problem_step(ms, 1e9 + 60.0, "sensor unplugged")
+    assert ms1.finding_spells == (("cavitation", 1e9, 1),)  # one miss keeps the clock
+    _, ms2 = source_problem_step(ms1, 1e9 + 120.0, "sensor unplugged")
+    assert ms2.finding_spells == ()
