@@ -53,7 +53,7 @@ peaks rather than on raw lines):
 
 Confidence is the product of an absolute part, 1 − exp(−score/20 dB), and a
 margin part, min(1, 2·(1 − runner-up/best)), where the runner-up is the best
-candidate more than 3 % (or 4 lines) away and not at 1/3, 1/2, 2 or 3
+candidate more than 3 % (or one line) away and not at 1/3, 1/2, 2 or 3
 times the winner. A score below ``min_score_db`` — or a single tone below
 twice that with no harmonic or forcing order beside it — means no credible
 rotation: ``found`` is False ("not running").
@@ -401,10 +401,13 @@ def estimate_speed(
     f0 = float(cand[best])
 
     # runner-up: the best harmonically unrelated candidate (f/3, f/2, 2f, 3f
-    # were settled by the sub-multiple check), for the margin part of confidence
+    # were settled by the sub-multiple check), for the margin part of confidence.
+    # A candidate near r·f0 scores on f0's own peaks only within 0.6 line of
+    # it (the match tolerance): one line (or 3 %) apart it is another speed —
+    # with coarse lines a family at 1.87 × f0 must still count as a rival
     away = np.ones(cand.size, dtype=bool)
     for r in (1.0, 0.5, 2.0, 1.0 / 3.0, 3.0):
-        away &= np.abs(cand - r * f0) > max(0.03 * r * f0, 4 * bin_hz)
+        away &= np.abs(cand - r * f0) > max(0.03 * r * f0, bin_hz)
     runner = float(total[away].max()) if away.any() else 0.0
 
     # least-squares refinement over the matched family (two passes, tighter second)

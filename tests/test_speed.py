@@ -236,6 +236,18 @@ def test_previous_estimate_tips_an_ambiguous_spectrum():
         assert "tracked" in est.method
 
 
+def test_two_unrelated_families_near_an_octave_are_not_a_confident_answer():
+    # two equal families 10.17 and 19.01 Hz apart (ratio 1.87, not an
+    # octave) on 0.39 Hz lines: the runner-up lies 1.3 Hz (3.4 lines) from
+    # 2 × the winner, still a different speed: the margin must count it
+    a, b = 10.17, 19.01
+    comps = [(a, 1.0, 0), (2 * a, 0.5, 0), (3 * a, 0.3, 0), (b, 1.0, 0), (2 * b, 0.5, 0), (3 * b, 0.3, 0)]
+    spec = speed_spectrum(tones(1600.0, 2.56, comps, noise_rms=0.05), 1600.0)
+    assert spec.bin_width_hz == pytest.approx(0.390625)
+    est = estimate_speed(spec, speed_range_hz=(10.0, 26.0), line_hz=50.0)
+    assert est.found and est.confidence < 0.3
+
+
 @pytest.mark.parametrize(
     "kwargs,msg",
     [
