@@ -344,8 +344,8 @@ def estimate_speed(
     # shaft rate apart (the spacing shows the rate even with 1X missing:
     # Schouten's residue pitch; misalignment's 2X-3X, looseness' long
     # series); 0..1, full at _SUPPORT_DB of evidence
-    one_x = evidence[:, orders == 1.0].max(axis=1)
-    harm = evidence[:, np.isin(orders, np.arange(1.0, n_harmonics + 1.0))]
+    harm = evidence[:, np.isin(orders, np.arange(1.0, n_harmonics + 1.0))]  # 1X … n×X
+    one_x = harm[:, 0]
     pairs = np.minimum(harm[:, 1:], harm[:, :-1]).max(axis=1, initial=0.0)
     support = np.minimum(1.0, np.maximum(one_x, pairs) / _SUPPORT_DB)
     # orders above 2X (higher harmonics, vane pass and other forcing orders)
@@ -354,8 +354,9 @@ def estimate_speed(
     # a speed outside the range fits m, 2m, 3m … × (its frequency / m) — e.g.
     # BPFO = 3.21X and its harmonics read as the 6X, 12X, 18X "vane pass" of
     # a shaft at 3.21/6 of the true speed
-    credit = np.where(orders[None, :] <= 2.0, 1.0, _UNSUPPORTED + (1.0 - _UNSUPPORTED) * support[:, None])
-    score = (weights[None, :] * credit * evidence).sum(axis=1)
+    low = orders <= 2.0
+    credit = _UNSUPPORTED + (1.0 - _UNSUPPORTED) * support
+    score = evidence @ np.where(low, weights, 0.0) + credit * (evidence @ np.where(low, 0.0, weights))
     # a shaft family without its fundamental (1X) is suspect: combs of other
     # origin (bearing tones, cage sidebands, intermodulation) fit rational
     # multiples of the true speed
