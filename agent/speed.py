@@ -23,11 +23,24 @@ peaks rather than on raw lines):
    as 1/√h, so f/2 and 2f lose to f) and near the synchronous forcing orders
    (vane pass, blade pass, gear mesh … and their 2nd and 3rd harmonics,
    weight 1): a weak 1X under a strong vane-pass family is still found.
-4. Priors: for a line-fed induction motor with known ``poles`` the speed
+4. Shaft-rate support, an analyst's first check: a speed hypothesis is
+   credible when the spectrum shows its shaft rate — the 1X itself
+   (residual unbalance gives one on every machine) or two consecutive
+   harmonics h, h+1 one shaft rate apart (the spacing gives the rate even
+   when 1X is missing: the residue pitch of Schouten 1940; misalignment's
+   2X-3X, looseness' long series). Orders above 2X (higher harmonics and
+   forcing orders) count fully only with that support, a quarter without
+   it, and the whole score is halved without a 1X. Otherwise any harmonic
+   family of a non-synchronous tone fits m, 2m, 3m × (its frequency ÷ m):
+   bearing-defect tones outgrowing 1X (BPFO = 3.21X, 2×, 3× BPFO) would read
+   as the 6X, 12X, 18X "vane pass" of a shaft at 3.21/6 of the true speed.
+5. Priors: for a line-fed induction motor with known ``poles`` the speed
    lies just below synchronous speed 2·``line_hz``/``poles`` (slip 0 to
    ``max_slip``), so candidates there are preferred; a previous estimate
-   adds a small Gaussian preference around itself.
-5. The best candidate is refined by a weighted least-squares fit over its
+   adds a small Gaussian preference around itself, scaled by the
+   candidate's shaft-rate support, so that tracking never keeps alive a
+   speed whose 1X has gone.
+6. The best candidate is refined by a weighted least-squares fit over its
    matched family, f₀ = Σ wₕ·h·fₕ / Σ wₕ·h², with wₕ the linear power SNR of
    harmonic h (the variance of fₕ/h falls as h²·SNR). Each fₕ is the
    Hann-window two-line interpolated frequency of
@@ -40,7 +53,7 @@ peaks rather than on raw lines):
 
 Confidence is the product of an absolute part, 1 − exp(−score/20 dB), and a
 margin part, min(1, 2·(1 − runner-up/best)), where the runner-up is the best
-candidate more than 3 % (or 4 lines) away and not at 1/3, 1/2, 2 or 3
+candidate more than 3 % (or one line) away and not at 1/3, 1/2, 2 or 3
 times the winner. A score below ``min_score_db`` — or a single tone below
 twice that with no harmonic or forcing order beside it — means no credible
 rotation: ``found`` is False ("not running").
@@ -76,6 +89,12 @@ _LINE_FAMILY = (1, 2, 3, 4)
 #: Hann main lobe: two tones need about this many lines between them to show
 #: as two peaks (common practice: separation ≥ 2 lines for Hann)
 _RESOLVE_LINES = 2.0
+#: evidence (dB above the noise-only level) at which a 1X, or the weaker of two
+#: consecutive harmonics, counts fully as shaft-rate support
+_SUPPORT_DB = 10.0
+#: credit of the orders above 2X at a candidate speed without shaft-rate
+#: support (1 with full support)
+_UNSUPPORTED = 0.25
 
 
 @dataclass(frozen=True, slots=True)
@@ -318,14 +337,30 @@ def estimate_speed(
     tol_abs = 0.6 * bin_hz
     tol_rel = 0.001
     idx, close = _match_grid(cand, orders, pk_f, tol_abs, tol_rel)
-    contrib = weights[None, :] * pk_ev[idx] * close
-    score = contrib.sum(axis=1)
-    # a shaft family without its fundamental (1X, or a forcing order at its
-    # first harmonic) is suspect: combs of other origin (bearing cage
-    # sidebands, intermodulation) fit rational multiples of the true speed
-    fund_cols = [i for i, o in enumerate(orders) if o == 1.0 or any(o == float(k) for k in forcing_orders)]
-    fund = (pk_ev[idx[:, fund_cols]] * close[:, fund_cols]).max(axis=1)
-    score = score * (0.5 + 0.5 * np.minimum(1.0, fund / 10.0))
+    evidence = pk_ev[idx] * close
+    # shaft-rate support (an analyst's first check): a speed is credible when
+    # the spectrum shows the shaft rate itself — its 1X (residual unbalance
+    # gives one on every machine), or two consecutive harmonics h, h+1 one
+    # shaft rate apart (the spacing shows the rate even with 1X missing:
+    # Schouten's residue pitch; misalignment's 2X-3X, looseness' long
+    # series); 0..1, full at _SUPPORT_DB of evidence
+    harm = evidence[:, np.isin(orders, np.arange(1.0, n_harmonics + 1.0))]  # 1X … n×X
+    one_x = harm[:, 0]
+    pairs = np.minimum(harm[:, 1:], harm[:, :-1]).max(axis=1, initial=0.0)
+    support = np.minimum(1.0, np.maximum(one_x, pairs) / _SUPPORT_DB)
+    # orders above 2X (higher harmonics, vane pass and other forcing orders)
+    # count fully only with that support: without it, a harmonic family of a
+    # non-synchronous tone (bearing defect tones and their harmonics) or of
+    # a speed outside the range fits m, 2m, 3m … × (its frequency / m) — e.g.
+    # BPFO = 3.21X and its harmonics read as the 6X, 12X, 18X "vane pass" of
+    # a shaft at 3.21/6 of the true speed
+    low = orders <= 2.0
+    credit = _UNSUPPORTED + (1.0 - _UNSUPPORTED) * support
+    score = evidence @ np.where(low, weights, 0.0) + credit * (evidence @ np.where(low, 0.0, weights))
+    # a shaft family without its fundamental (1X) is suspect: combs of other
+    # origin (bearing tones, cage sidebands, intermodulation) fit rational
+    # multiples of the true speed
+    score = score * (0.5 + 0.5 * np.minimum(1.0, one_x / _SUPPORT_DB))
 
     prior = np.ones_like(cand)
     sync_hz = None
@@ -334,8 +369,10 @@ def estimate_speed(
         inside = (cand <= sync_hz + 0.5 * bin_hz) & (cand >= sync_hz * (1.0 - max_slip))
         prior = np.where(inside, 1.0, 0.5)
     if previous is not None and previous.found and previous.speed_hz > 0:
+        # tracking helps a speed only as far as its shaft rate is still seen: a
+        # hypothesis whose 1X has gone is not kept alive by its past
         sigma = max(0.03 * previous.speed_hz, 3 * bin_hz)
-        prior = prior * (1.0 + 0.25 * np.exp(-0.5 * ((cand - previous.speed_hz) / sigma) ** 2))
+        prior = prior * (1.0 + 0.25 * support * np.exp(-0.5 * ((cand - previous.speed_hz) / sigma) ** 2))
     total = score * prior
     best = int(np.argmax(total))
     in_window = prior.copy() if sync_hz is not None else None
@@ -365,10 +402,13 @@ def estimate_speed(
     f0 = float(cand[best])
 
     # runner-up: the best harmonically unrelated candidate (f/3, f/2, 2f, 3f
-    # were settled by the sub-multiple check), for the margin part of confidence
+    # were settled by the sub-multiple check), for the margin part of confidence.
+    # A candidate near r·f0 scores on f0's own peaks only within 0.6 line of
+    # it (the match tolerance): one line (or 3 %) apart it is another speed —
+    # with coarse lines a family at 1.87 × f0 must still count as a rival
     away = np.ones(cand.size, dtype=bool)
     for r in (1.0, 0.5, 2.0, 1.0 / 3.0, 3.0):
-        away &= np.abs(cand - r * f0) > max(0.03 * r * f0, 4 * bin_hz)
+        away &= np.abs(cand - r * f0) > max(0.03 * r * f0, bin_hz)
     runner = float(total[away].max()) if away.any() else 0.0
 
     # least-squares refinement over the matched family (two passes, tighter second)

@@ -122,6 +122,64 @@ def test_weak_1x_under_vane_pass_family(vanes):
     assert abs(est.speed_hz - f0) / f0 <= 0.002
 
 
+def test_vane_pass_family_without_any_1x_is_found_but_not_confidently():
+    # the same family with no 1X at all: nothing else in the range explains
+    # it, so the speed is still found, but a forcing family with no shaft
+    # rate beside it could as well be a non-synchronous family (bearing tones
+    # and their harmonics) of a sub-multiple speed: the confidence says so
+    f0, vanes = 24.6, 6
+    vpf = vanes * f0
+    comps = [(vpf, 1.0, 0.3), (2 * vpf, 0.5, 1.1), (3 * vpf, 0.25, 2.0), (120.0, 0.8, 0.0)]
+    x = tones(5120.0, 4.0, comps, noise_rms=0.3, seed=vanes)
+    est = estimate_speed(speed_spectrum(x, 5120.0), speed_range_hz=(10.0, 60.0), line_hz=60.0,
+                         forcing_orders=(vanes,))
+    assert est.found and abs(est.speed_hz - f0) / f0 <= 0.002
+    assert est.confidence < 0.5
+
+
+def _pump_with_outer_race_defect(rpm, stage, tone_mm_s, seed=28):
+    """A capture of the demo skid (config/demo-skid.toml: 4-pole motor on a
+    VFD, 6-vane pump, pump drive-end bearing with 9 balls, 22.225 mm on an
+    80 mm pitch) with an outer-race defect, from the simulator."""
+    from agent.simulator import BearingDefect, Faults, OperatingPoint, Resonance, SimBearing, SimMachine, synthesize
+
+    machine = SimMachine(poles=4, rotor_bars=28, vanes=6, bearings=(SimBearing("pump drive end", 9, 22.225, 80.0),),
+                         residual_1x_mm_s=0.8, vane_pass_mm_s=(0.45, 0.15), line_mm_s=(0.03, 0.25),
+                         floor_mm_s=0.08, noise_g=0.003, structure=Resonance(160.0, 0.05, 3.0))
+    speed_hz = rpm / 60.0
+    point = OperatingPoint(speed_hz=speed_hz, line_hz=speed_hz * 2 / (1 - 0.013))  # VFD: 1.3 % slip
+    faults = Faults(bearings=(BearingDefect("pump drive end", "outer", impulse_g=1.0, stage=stage,
+                                            tone_mm_s=tone_mm_s, slip_frac=0.012),))
+    return synthesize(machine, point, faults, 25600.0, 65536, seed=seed)
+
+
+@pytest.mark.parametrize("rpm,stage,tone_mm_s", [(1140, 3, 0.9), (1478, 3, 0.9), (1140, 4, 1.6)])
+def test_bearing_tone_family_is_not_taken_for_vane_pass_of_a_slower_shaft(rpm, stage, tone_mm_s):
+    # Demo finding: from stage 3 the BPFO family (3.21X and its harmonics)
+    # outgrows 1X; at 1140 r/min (19.0 Hz) BPFO, 2×, 3× BPFO = 61, 122,
+    # 183 Hz are exactly the 6X, 12X, 18X "vane pass" of a 10.17 Hz shaft
+    # (inside the configured 600-1600 r/min), which has no 1X and no two
+    # consecutive harmonics. The true speed must win, with or without a
+    # previous estimate at the wrong speed.
+    x, truth = _pump_with_outer_race_defect(rpm, stage, tone_mm_s)
+    f0 = truth["speed_hz"]
+    # the case at hand: BPFO above 1X in velocity, its harmonics far above 1X in acceleration
+    vel = {t["name"]: t["vel_rms_mm_s"] for t in truth["tones"]}
+    acc = {t["name"]: t["accel_rms_ms2"] for t in truth["tones"]}
+    assert vel["BPFO"] > vel["1X"]
+    assert min(acc["2xBPFO"], acc["3xBPFO"]) > 2.0 * acc["1X"]
+    bpfo_hz = truth["bearings"][0]["defect_hz"]
+    wrong_hz = bpfo_hz / 6.0  # BPFO read as 6X (vane pass) of this speed
+    assert 600.0 / 60 < wrong_hz < f0
+    spec = speed_spectrum(x, 25600.0)
+    for previous in (None, SpeedEstimate(speed_hz=wrong_hz, confidence=1.0, found=True)):
+        est = estimate_speed(spec, speed_range_hz=(10.0, 1600.0 / 60.0), line_hz=50.0, poles=4,
+                             forcing_orders=(6.0,), previous=previous, variable_speed=True)
+        assert est.found
+        assert abs(est.speed_hz - f0) / f0 < 0.005, (previous, est)
+        assert est.confidence > 0.5
+
+
 def test_half_order_family_does_not_halve_a_line_fed_2_pole_motor():
     # looseness puts 0.5X, 1.5X, 2.5X ... beside the harmonics (common
     # practice); a 2-pole 60 Hz motor cannot turn at half its slip-window
@@ -176,6 +234,18 @@ def test_previous_estimate_tips_an_ambiguous_spectrum():
         est = estimate_speed(spec, speed_range_hz=(10.0, 60.0), line_hz=50.0, previous=prev)
         assert est.speed_hz == pytest.approx(expect, rel=0.002)
         assert "tracked" in est.method
+
+
+def test_two_unrelated_families_near_an_octave_are_not_a_confident_answer():
+    # two equal families 10.17 and 19.01 Hz apart (ratio 1.87, not an
+    # octave) on 0.39 Hz lines: the runner-up lies 1.3 Hz (3.4 lines) from
+    # 2 × the winner, still a different speed: the margin must count it
+    a, b = 10.17, 19.01
+    comps = [(a, 1.0, 0), (2 * a, 0.5, 0), (3 * a, 0.3, 0), (b, 1.0, 0), (2 * b, 0.5, 0), (3 * b, 0.3, 0)]
+    spec = speed_spectrum(tones(1600.0, 2.56, comps, noise_rms=0.05), 1600.0)
+    assert spec.bin_width_hz == pytest.approx(0.390625)
+    est = estimate_speed(spec, speed_range_hz=(10.0, 26.0), line_hz=50.0)
+    assert est.found and est.confidence < 0.3
 
 
 @pytest.mark.parametrize(
