@@ -5,7 +5,7 @@ the fictional Tarnbrook water works — normal running at two speeds, an
 outer-race defect growing over weeks, a cavitation episode, a sensor-cable
 afternoon, a repair) into ``OUT/recordings``, then replays it through the
 monitoring pipeline with ``config/demo-skid.toml`` — the same code path as
-``skidvib replay`` — showing progress, speed, state and the latest finding
+``skidvib replay`` — showing progress, speed, state and the findings shown now
 as it goes, and ends with what was detected when, beside the scenario's
 ground truth.
 
@@ -141,7 +141,7 @@ def run_demo(out_dir: str | Path = "demo-out", *, jobs: int | None = None, strea
     console.line(f"Replaying {total} captures through the monitoring pipeline with {config.name} (fast) ...")
     log_lines: list[str] = []
     jsonl = (out / "replay.jsonl").open("w", encoding="utf-8")
-    latest = {"finding": "none yet"}
+    shown: dict[str, str] = {}  # findings the operator is shown now: code → severity
 
     def on_step(view, new):
         jsonl.write(json.dumps(view.to_json(), sort_keys=True) + "\n")
@@ -150,7 +150,12 @@ def run_demo(out_dir: str | Path = "demo-out", *, jobs: int | None = None, strea
             log_lines.append(text)
             console.line(text)
             if c["kind"] == "finding":
-                latest["finding"] = f"{c['code']} ({c['severity']})"
+                shown[c["code"]] = c["severity"]
+            elif c["kind"] == "cleared":
+                shown.pop(c["code"], None)
+        for f in view.findings:  # the shown findings' severity of this capture (it can rise and fall)
+            if f.code in shown:
+                shown[f.code] = f.severity.name.lower()
         if view.speed_hz:
             speed = f"{view.speed_hz * 60:6.0f} r/min"
         elif view.truth and view.truth.get("running"):
@@ -162,7 +167,7 @@ def run_demo(out_dir: str | Path = "demo-out", *, jobs: int | None = None, strea
         when = view.to_json()["t0_utc"].replace("T", " ")[:-4] + "Z"
         n = view.seq + 1
         console.status(f"{_bar(n, total)} {n:3d}/{total}  {when}  {speed}  {view.state}  "
-                       f"{_mm_s(view.vel_rms_mm_s)}  latest finding: {latest['finding']}"
+                       f"{_mm_s(view.vel_rms_mm_s)}  findings: {_shown_text(shown)}"
                        f"  | sim: {sim_tag(view.truth)}", n, total)
 
     try:
@@ -190,3 +195,8 @@ def run_demo(out_dir: str | Path = "demo-out", *, jobs: int | None = None, strea
     shown = config.relative_to(ROOT) if config.is_relative_to(ROOT) else config
     console.line(f"Replay them again with: skidvib replay {rec_dir} -c {shown}")
     return 0
+
+
+def _shown_text(shown: dict[str, str]) -> str:
+    """The findings shown now, newest last ("none" when there are none)."""
+    return ", ".join(f"{code} ({sev})" for code, sev in shown.items()) or "none"

@@ -153,10 +153,11 @@ def run_replay(source, cfg, *, on_step: Callable[[StepView, list[dict]], None] |
             elif ev.get("event") == "new_finding":
                 new.append({"t0_utc_s": ev["t_utc_s"], "seq": view.seq, "kind": "finding", "code": ev["code"],
                             "severity": ev["severity"], "title": ev["title"]})
-        codes = {f.code for f in reportable_findings(result.findings)}
-        for code in sorted(prev_codes - codes):
-            new.append({"t0_utc_s": view.t0_utc_s, "seq": view.seq, "kind": "cleared", "code": code})
-        prev_codes = codes
+        if result.analysis is not None:  # a capture not analysed (bad or no data) clears nothing
+            codes = {f.code for f in reportable_findings(result.findings)}
+            for code in sorted(prev_codes - codes):
+                new.append({"t0_utc_s": view.t0_utc_s, "seq": view.seq, "kind": "cleared", "code": code})
+            prev_codes = codes
         res.changes.extend(new)
         if on_step:
             on_step(view, new)
