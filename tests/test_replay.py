@@ -302,3 +302,37 @@ def test_truth_comparison_says_when_a_fault_is_not_found():
     assert "vane_pass" in text.split("wrong calls):")[1].splitlines()[1]
     # the simulated machine has a 160 Hz mode: a resonance near it is true, not a wrong call
     assert "(resonance in 3 captures sits at a natural frequency of the simulated machine" in text
+
+
+class _ListSource:
+    """Captures from a list (the replay loop needs only read())."""
+
+    def __init__(self, caps):
+        self.caps = list(caps)
+
+    def read(self, timeout_s=None):
+        if not self.caps:
+            raise EndOfSource()
+        return (self.caps.pop(0),)
+
+
+def test_a_capture_with_bad_data_clears_no_finding():
+    """A flatlined capture between two faulty ones: the replay log does not say the defect
+    cleared (the agent could not look), and so shows no new finding when data returns."""
+    from agent.model import Capture
+    from tests.test_speed import _pump_with_outer_race_defect
+
+    cfg = load_config(ROOT / "config/demo-skid.toml")
+    x, _ = _pump_with_outer_race_defect(1478, 3, 0.9)
+    t0 = 1.8e9
+    caps = [Capture(x, 25600.0, t0_utc_s=t0 + 60.0 * i, channel="pump DE horizontal", source_id="t", seq=i)
+            for i in range(3)]
+    caps[1] = Capture(np.zeros_like(x), 25600.0, t0_utc_s=t0 + 60.0, channel="pump DE horizontal",
+                      source_id="t", seq=1)
+    res = run_replay(_ListSource(caps), cfg)
+    assert [s.state for s in res.steps][1] == "sensor_fault"
+    kinds = [(c["seq"], c["kind"], c.get("code")) for c in res.changes if c["kind"] != "state"]
+    assert (0, "finding", "bearing_outer_race") in kinds  # the defect is found at once
+    assert not any(k == "cleared" for _, k, _ in kinds), kinds
+    assert [k for k in kinds if k[1] == "finding" and k[2] == "bearing_outer_race"] == [(0, "finding",
+                                                                                          "bearing_outer_race")]
