@@ -13,11 +13,19 @@ peaks rather than on raw lines):
    (:func:`agent.spectra.noise_threshold_db`: averaged periodogram lines are
    χ² with 2K degrees of freedom), capped at 30 dB so one huge peak cannot
    outvote a whole family.
-2. Peaks on the line-frequency family (1…4 × ``line_hz``, within about two
-   lines) are set aside: they are electrical, not mechanical, and would
-   otherwise pose as 1X/2X of a 4-pole or 2-pole motor. A machine turning at
-   exactly a line multiple is still found through its other harmonics
-   and forcing orders.
+2. For a line-fed motor, peaks on the line-frequency family (1…4 ×
+   ``line_hz``, within about two lines) are set aside: they are electrical,
+   not mechanical, and would otherwise pose as 1X/2X of a 4-pole or 2-pole
+   motor. A machine turning at exactly a line multiple is still found
+   through its other harmonics and forcing orders. Under a VFD
+   (``variable_speed``) the motor's electrical family is at the drive's
+   output frequency, speed × poles/2 ÷ (1 − slip), and follows the speed, so
+   the mains family is not special: a mechanical tone may fall on it (a
+   6-vane pump at 1000 r/min has its vane pass at 100 Hz). Mains-family
+   peaks (leaking from other equipment) then give no shaft-rate support
+   (step 4) and count for a speed only in proportion to its support, so a
+   family built from them alone is no rotation and cannot outweigh a
+   mechanical hypothesis that explains them.
 3. Every candidate speed on a fine grid across ``speed_range_hz`` is scored
    by the evidence of peaks near 1X, 2X … ``n_harmonics``×X (weights falling
    as 1/√h, so f/2 and 2f lose to f) and near the synchronous forcing orders
@@ -291,7 +299,8 @@ def estimate_speed(
         ``machine.speed_rpm`` ÷ 60).
     line_hz
         Supply frequency (50 or 60 Hz) whose family 1…4 × ``line_hz`` is
-        never taken as shaft evidence; None when unknown.
+        never taken as shaft evidence for a line-fed motor, and never as a
+        shaft rate under a VFD; None when unknown.
     poles
         Motor poles; with a line-fed motor (``variable_speed`` False) the
         search prefers speeds within ``max_slip`` below 2·``line_hz``/poles
@@ -318,16 +327,21 @@ def estimate_speed(
     peaks = find_peaks(sub, floor, min_height_db=excess0, fmin_hz=0.5 * lo, false_alarm_per_line=None)
     notes: list[str] = []
     line_tol_hz = 1.0 * bin_hz + 0.03
-    kept = []
-    for p in peaks:
-        if line_hz is not None and any(abs(p.freq_hz - k * line_hz) <= line_tol_hz for k in _LINE_FAMILY):
-            continue
-        kept.append(p)
+    def on_mains(f_hz: float) -> bool:
+        return line_hz is not None and any(abs(f_hz - k * line_hz) <= line_tol_hz for k in _LINE_FAMILY)
+
+    # a line-fed motor's own electrical family is never shaft evidence. Under a
+    # VFD the motor is fed at the drive's output frequency (speed × poles/2 /
+    # (1 − slip)), not the mains: a tone on the mains family (leaking from
+    # other equipment) may be a genuine mechanical order (vane pass at
+    # 2 × line_hz), so it is scored, but it cannot show a shaft rate (1X, or a
+    # pair h, h+1) by itself and counts only for a speed that shows one
+    kept = sorted((p for p in peaks if variable_speed or not on_mains(p.freq_hz)), key=lambda p: p.freq_hz)
     if not kept:
         return _not_found(spec, "no credible rotation: no peaks above the noise outside the line-frequency family")
-    kept.sort(key=lambda p: p.freq_hz)
     pk_f = np.array([p.freq_hz for p in kept] + [np.inf])
     pk_ev = np.array([min(p.height_db - excess0, _CAP_DB) for p in kept] + [0.0])
+    pk_ev_support = np.where([on_mains(f) for f in pk_f], 0.0, pk_ev)  # evidence that can show a shaft rate
 
     # candidate grid: fine enough that the highest scored order moves < 1/4 line per step
     step = bin_hz / (4.0 * orders.max())
@@ -337,17 +351,23 @@ def estimate_speed(
     tol_abs = 0.6 * bin_hz
     tol_rel = 0.001
     idx, close = _match_grid(cand, orders, pk_f, tol_abs, tol_rel)
-    evidence = pk_ev[idx] * close
+    shaft_ev = pk_ev_support[idx] * close  # evidence of tones that can show a shaft rate
+    mains_ev = pk_ev[idx] * close - shaft_ev  # evidence of mains-family tones (VFD only; else 0)
     # shaft-rate support (an analyst's first check): a speed is credible when
     # the spectrum shows the shaft rate itself — its 1X (residual unbalance
     # gives one on every machine), or two consecutive harmonics h, h+1 one
     # shaft rate apart (the spacing shows the rate even with 1X missing:
     # Schouten's residue pitch; misalignment's 2X-3X, looseness' long
     # series); 0..1, full at _SUPPORT_DB of evidence
-    harm = evidence[:, np.isin(orders, np.arange(1.0, n_harmonics + 1.0))]  # 1X … n×X
+    harm = shaft_ev[:, np.isin(orders, np.arange(1.0, n_harmonics + 1.0))]  # 1X … n×X
     one_x = harm[:, 0]
     pairs = np.minimum(harm[:, 1:], harm[:, :-1]).max(axis=1, initial=0.0)
     support = np.minimum(1.0, np.maximum(one_x, pairs) / _SUPPORT_DB)
+    # under a VFD a mains-family tone counts for a speed only as far as that
+    # speed shows its shaft rate by other tones: it may be the speed's vane
+    # pass, but mains leakage alone (a stopped machine beside running ones)
+    # is no rotation
+    evidence = shaft_ev + support[:, None] * mains_ev
     # orders above 2X (higher harmonics, vane pass and other forcing orders)
     # count fully only with that support: without it, a harmonic family of a
     # non-synchronous tone (bearing defect tones and their harmonics) or of
@@ -390,7 +410,7 @@ def estimate_speed(
         if f_sub < lo:
             continue
         hs = np.arange(1, n_harmonics * m + 1, dtype=float)
-        ev = _family_evidence(f_sub, hs, pk_f, pk_ev, tol_abs, tol_rel)
+        ev = _family_evidence(f_sub, hs, pk_f, pk_ev_support, tol_abs, tol_rel)
         on = ev[hs % m == 0].sum()
         off = ev[hs % m != 0].sum()
         if in_window is not None and _inside(in_window, best) and not _inside(in_window, _nearest(cand, f_sub)):

@@ -137,20 +137,66 @@ def test_vane_pass_family_without_any_1x_is_found_but_not_confidently():
     assert est.confidence < 0.5
 
 
-def _pump_with_outer_race_defect(rpm, stage, tone_mm_s, seed=28):
+def _demo_skid(rpm, faults=None, seed=28):
     """A capture of the demo skid (config/demo-skid.toml: 4-pole motor on a
     VFD, 6-vane pump, pump drive-end bearing with 9 balls, 22.225 mm on an
-    80 mm pitch) with an outer-race defect, from the simulator."""
-    from agent.simulator import BearingDefect, Faults, OperatingPoint, Resonance, SimBearing, SimMachine, synthesize
+    80 mm pitch) from the simulator; the drive's output frequency is
+    speed × poles/2 ÷ (1 − slip), slip 1.3 %."""
+    from agent.simulator import Faults, OperatingPoint, Resonance, SimBearing, SimMachine, synthesize
 
     machine = SimMachine(poles=4, rotor_bars=28, vanes=6, bearings=(SimBearing("pump drive end", 9, 22.225, 80.0),),
                          residual_1x_mm_s=0.8, vane_pass_mm_s=(0.45, 0.15), line_mm_s=(0.03, 0.25),
                          floor_mm_s=0.08, noise_g=0.003, structure=Resonance(160.0, 0.05, 3.0))
     speed_hz = rpm / 60.0
     point = OperatingPoint(speed_hz=speed_hz, line_hz=speed_hz * 2 / (1 - 0.013))  # VFD: 1.3 % slip
+    return synthesize(machine, point, faults or Faults(), 25600.0, 65536, seed=seed)
+
+
+def _pump_with_outer_race_defect(rpm, stage, tone_mm_s, seed=28):
+    """A demo-skid capture (:func:`_demo_skid`) with an outer-race defect."""
+    from agent.simulator import BearingDefect, Faults
+
     faults = Faults(bearings=(BearingDefect("pump drive end", "outer", impulse_g=1.0, stage=stage,
                                             tone_mm_s=tone_mm_s, slip_frac=0.012),))
-    return synthesize(machine, point, faults, 25600.0, 65536, seed=seed)
+    return _demo_skid(rpm, faults, seed)
+
+
+def _mains_leak(n, fs_hz, accel_ms2=0.05, line_hz=50.0):
+    """Hum from other equipment on the mains: 1…4 × line_hz (m/s² r.m.s. each)."""
+    t = np.arange(n) / fs_hz
+    return sum(accel_ms2 * np.sqrt(2) * np.sin(2 * np.pi * k * line_hz * t + k) for k in (1, 2, 3, 4))
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+@pytest.mark.parametrize("leak", [False, True], ids=["", "mains leak"])
+def test_vfd_vane_pass_on_a_mains_multiple_is_mechanical(seed, leak):
+    # Demo finding: at 1000 r/min (16.67 Hz) the 6-vane pump's vane pass is
+    # 100 Hz and 2× vane pass 200 Hz — 2 and 4 × the 50 Hz mains. Under a VFD
+    # the motor is fed at the drive's output frequency (33.77 Hz here), so
+    # these are mechanical; setting them aside left the drive's 33.77 and
+    # 67.55 Hz posing as 2X/4X of the synchronous 16.886 Hz (seed 1). Mains
+    # hum from other equipment on top must not change the answer.
+    x, truth = _demo_skid(1000.0, seed=seed)
+    f0 = truth["speed_hz"]
+    vp = {t["name"]: t["freq_hz"] for t in truth["tones"]}
+    assert abs(vp["VP"] - 100.0) < 1e-6 and abs(vp["2xVP"] - 200.0) < 1e-6
+    if leak:
+        x = x + _mains_leak(x.size, 25600.0)
+    est = estimate_speed(speed_spectrum(x, 25600.0), speed_range_hz=(10.0, 1600.0 / 60.0), line_hz=50.0, poles=4,
+                         forcing_orders=(6.0,), variable_speed=True)
+    assert est.found
+    assert abs(est.speed_hz - f0) / f0 < 0.005, est
+    assert est.confidence > 0.5
+
+
+@pytest.mark.parametrize("variable_speed", [False, True], ids=["line-fed", "vfd"])
+def test_mains_hum_alone_is_not_rotation_under_a_vfd_either(variable_speed):
+    # a stopped machine beside running ones: hum at 50…200 Hz and noise; under a
+    # VFD the hum is scored only for a speed that shows its own shaft rate
+    x = _mains_leak(65536, 25600.0, accel_ms2=0.5) + np.random.default_rng(3).normal(0, 0.02, 65536)
+    est = estimate_speed(speed_spectrum(x, 25600.0), speed_range_hz=(10.0, 1600.0 / 60.0), line_hz=50.0, poles=4,
+                         forcing_orders=(6.0,), variable_speed=variable_speed)
+    assert not est.found, est
 
 
 @pytest.mark.parametrize("rpm,stage,tone_mm_s", [(1140, 3, 0.9), (1478, 3, 0.9), (1140, 4, 1.6)])
