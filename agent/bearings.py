@@ -51,8 +51,9 @@ where so marked), stated here:
   harmonics (on the demo skid 2 × motor BPFI lies 1 % from 3 × pump BPFO);
 * stage (common practice): 1 defect only in the envelope; 2 a defect tone
   also in the velocity spectrum; 3 harmonics there and, for inner race and
-  rolling element, sidebands; 4 broadband floor raised (needs a baseline:
-  passed in as ``floor_rise_db``).
+  rolling element, sidebands; 4 the high-frequency floor raised broadly,
+  across the octaves, not only where the impacts ring a resonance
+  (:func:`with_floor_stage`, from the diagnosis stage's floor regions).
 """
 
 from __future__ import annotations
@@ -569,11 +570,11 @@ def _spectrum_stage(
     speed_hz: float,
     ftf_hz: float,
     settings: BearingSettings,
-    floor_rise_db: float | None,
 ) -> tuple[int, list[dict]]:
-    """Stage 1-4 (common practice) and the velocity-spectrum evidence (``staging``: :func:`_staging_lines`)."""
-    if floor_rise_db is not None and floor_rise_db >= 6.0:
-        return 4, []
+    """Stage 1-3 (common practice) and the velocity-spectrum evidence (``staging``: :func:`_staging_lines`).
+
+    Stage 4 needs the capture's high-frequency floor: :func:`with_floor_stage`.
+    """
     if staging is None:
         return 1, []
     vel, h = staging
@@ -627,7 +628,6 @@ def diagnose_bearings(
     bearings: tuple[BearingSpec, ...],
     settings: BearingSettings = BearingSettings(),
     *,
-    floor_rise_db: float | None = None,
     spectra: CaptureSpectra | None = None,
 ) -> tuple[Finding, ...]:
     """Bearing findings for one capture (one finding per bearing at most).
@@ -675,7 +675,7 @@ def diagnose_bearings(
             continue
         if staging is None:
             staging = _staging_lines(x, fs_hz, speed_hz, settings, spectra)
-        stage, vel_ev = _spectrum_stage(top, staging, speed_hz, b.orders.ftf * speed_hz, settings, floor_rise_db)
+        stage, vel_ev = _spectrum_stage(top, staging, speed_hz, b.orders.ftf * speed_hz, settings)
         others = {d: round(s.confidence, 3) for d, s in scores.items()}
         called = top.confidence >= settings.call_confidence
         findings.append(
@@ -734,6 +734,50 @@ def _lines_at_floor(ses: EnvelopeSpectrum, mask: np.ndarray, width_hz: float) ->
         near = src[a0:b0][~mask[a0:b0]]
         a[lo:hi] = float(np.median(near)) if near.size else 0.0
     return replace(ses, amplitude=a)
+
+
+#: stage 4 (the agent's own settings, set on the simulator's bearing stages, 2026-12): the median
+#: high-frequency octave density ÷ the highest one (:func:`agent.peaks.floor_spread`) — a defect's
+#: impacts ringing a resonance give 0.22-0.42, a floor raised broadly 0.65-0.72, a healthy flat
+#: floor about 0.5 — and the median density in g/√Hz, at least the level the cavitation rule takes
+#: as a surely raised floor without a baseline (healthy demo skid 2.6e-5, stage 3 6e-4-9.5e-4,
+#: stage 4 2.5e-3-4e-3)
+STAGE4_SPREAD = 0.55
+STAGE4_DENSITY_G_RTHZ = 6e-4
+#: a floor raised evenly across every octave is flow noise (cavitation: 0.88-1 on the simulator,
+#: agent.diagnose.CAVITATION_SPREAD) rather than spreading bearing damage: no stage 4 from it
+STAGE4_SPREAD_MAX = 0.85
+
+
+def with_floor_stage(findings: tuple[Finding, ...], regions) -> tuple[Finding, ...]:
+    """Findings with a called stage-3 bearing defect raised to stage 4 when the high-frequency
+    floor is raised broadly (common practice: in the last stage the discrete tones sink into a raised
+    broadband floor as the damage spreads). ``regions``: :class:`agent.peaks.FloorRegion` of the
+    capture's acceleration floor spectrum.
+    """
+    from agent.peaks import floor_spread, hf_floor_densities
+
+    dens = [d for _, d in hf_floor_densities(regions)]
+    if len(dens) < 3:
+        return findings  # too few octaves to tell a resonance from a broad rise
+    spread = floor_spread(dens)
+    mid = sorted(dens)[len(dens) // 2]
+    if not STAGE4_SPREAD <= spread < STAGE4_SPREAD_MAX or mid < STAGE4_DENSITY_G_RTHZ:
+        return findings
+    out = []
+    for f in findings:
+        if f.code in CODES.values() and f.stage == 3 and f.extra.get("called"):
+            x = f.extra
+            f = replace(
+                f, stage=4,
+                title=_title(x["bearing"], x["defect"], True, x["fundamental"], x["order"], 4),
+                evidence=f.evidence + ({"metric": "high-frequency floor, median octave, g/√Hz",
+                                        "value": float(f"{mid:.3g}")},
+                                       {"metric": "median octave ÷ highest (1 = raised evenly)",
+                                        "value": round(spread, 2)}),
+            )
+        out.append(f)
+    return tuple(out)
 
 
 def _title(name: str, defect: str, called: bool, f0_hz: float, order: float, stage: int) -> str:

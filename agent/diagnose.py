@@ -52,7 +52,7 @@ import numpy as np
 
 from agent.features import ISO20816_3_VELOCITY_MM_S
 from agent.model import STANDARD_GRAVITY_MS2, Finding
-from agent.peaks import AccountedPeak, AccountedSpectrum
+from agent.peaks import AccountedPeak, AccountedSpectrum, floor_spread, hf_floor_densities
 
 #: a finding at or above this confidence is "high confidence"
 HIGH_CONFIDENCE = 0.7
@@ -472,12 +472,9 @@ def rule_cavitation(ctx: DiagnosisInput) -> Finding | None:
         ev += [{"metric": f"floor {r.name} vs baseline, dB", "value": round(r.delta_db, 1)} for r in with_base]
     else:
         dens = []
-        for r in hf:
-            g = r.level / STANDARD_GRAVITY_MS2 if r.unit in ("m/s2", "m/s²") else None
-            if g is None:
-                continue
-            dens.append(g / math.sqrt(r.f_hi_hz - r.f_lo_hz))
-            ev.append({"metric": f"floor {r.name}, g r.m.s.", "value": round(g, 4)})
+        for r, density in hf_floor_densities(hf):
+            dens.append(density)
+            ev.append({"metric": f"floor {r.name}, g r.m.s.", "value": round(r.level / STANDARD_GRAVITY_MS2, 4)})
         if not dens:
             return None
         mid = sorted(dens)[len(dens) // 2]
@@ -490,8 +487,7 @@ def rule_cavitation(ctx: DiagnosisInput) -> Finding | None:
     # on the simulator: bearing ringing 0.22-0.42, stage-4 bearing floor 0.65-0.72, cavitation 0.88-1)
     called = [f for f in ctx.bearing_findings if f.code in BEARING_CODES and f.extra.get("called", f.confidence >= 0.5)]
     if called:
-        density = sorted(r.level / math.sqrt(r.f_hi_hz - r.f_lo_hz) for r in hf)  # per √Hz: octaves differ in width
-        spread = density[len(density) // 2] / density[-1] if density[-1] > 0 else 0.0
+        spread = floor_spread([r.level / math.sqrt(r.f_hi_hz - r.f_lo_hz) for r in hf])  # per √Hz
         conf *= 0.4 + 0.6 * ramp(spread, *CAVITATION_SPREAD)
         ev.append({"metric": "bearing defect called", "value": called[0].code})
         ev.append({"metric": "median high-frequency region / highest (1 = evenly broadband)", "value": round(spread, 2)})

@@ -48,7 +48,7 @@ from typing import Any
 import numpy as np
 from scipy import ndimage
 
-from agent.model import Peak
+from agent.model import STANDARD_GRAVITY_MS2, Peak
 from agent.spectra import Spectrum, noise_floor
 
 #: label categories, in the order the pass assigns them
@@ -796,6 +796,24 @@ def floor_regions(
         base = None if baseline is None else baseline.get(name)
         out.append(FloorRegion(name, float(lo), float(hi), level, spec.unit, base))
     return tuple(out)
+
+
+def hf_floor_densities(regions: Sequence[FloorRegion], f_min_hz: float = 999.0) -> list[tuple[FloorRegion, float]]:
+    """The acceleration floor regions from ``f_min_hz`` up (the octaves above 1 kHz), each with its
+    level as a density in g/√Hz (octaves differ in width), in frequency order. Velocity regions are left out.
+    """
+    out = []
+    for r in regions:
+        if r.f_lo_hz >= f_min_hz and r.f_hi_hz > r.f_lo_hz and r.unit in ("m/s2", "m/s²"):
+            out.append((r, r.level / STANDARD_GRAVITY_MS2 / math.sqrt(r.f_hi_hz - r.f_lo_hz)))
+    return out
+
+
+def floor_spread(densities: Sequence[float]) -> float:
+    """Median ÷ highest of the high-frequency floor densities: near 1 when the floor is raised evenly
+    across the octaves, small when one band (a ringing resonance) stands out; 0 without data."""
+    d = sorted(densities)
+    return d[len(d) // 2] / d[-1] if d and d[-1] > 0 else 0.0
 
 
 def find_humps(

@@ -215,6 +215,7 @@ def diagnosis_stage(capture: Capture, cfg: AgentConfig, acc: Spectrum, overall: 
     running median.
     """
     from agent.advice import advise
+    from agent.bearings import with_floor_stage
     from agent.diagnose import DiagnosisInput, diagnose
     from agent.peaks import account_peaks
 
@@ -230,6 +231,7 @@ def diagnosis_stage(capture: Capture, cfg: AgentConfig, acc: Spectrum, overall: 
         spectrum=dvel, hump_spectrum=velocity_spectrum(cacc, max(f_low, 3 * cacc.bin_width_hz)),
         floor_spectrum=cacc,
     )
+    bearing_findings = with_floor_stage(tuple(bearing_findings), accounted.floor_regions)
     ctx = DiagnosisInput(accounted=accounted, vel_rms_mm_s=overall.vel_rms_mm_s, iso_group=cfg.machine.iso_group,
                          support=cfg.machine.support, speed_confidence=speed_confidence,
                          bearing_findings=tuple(bearing_findings), baseline_ratios=baseline_ratios)

@@ -141,3 +141,51 @@ def test_healthy_demo_skid_shows_no_cavitation(seed):
     from agent.simulator import Faults
 
     assert "cavitation" not in _demo_skid_capture(Faults(), seed)
+
+
+def test_bearing_stage_four_when_the_high_frequency_floor_rises_broadly():
+    """Common practice: in the last stage the damage spreads and the floor rises across the
+    high-frequency octaves, not only where the impacts ring a resonance (stages 1-3)."""
+    from agent.config import load_config
+    from agent.model import Capture
+    from agent.pipeline import analyse_capture
+
+    from tests.test_speed import _pump_with_outer_race_defect
+
+    cfg = load_config(Path(__file__).resolve().parents[1] / "config/demo-skid.toml")
+    stages = {}
+    for stage in (3, 4):
+        x, _ = _pump_with_outer_race_defect(1478, stage, 0.9 if stage == 3 else 1.6, seed=3)
+        a = analyse_capture(Capture(x, 25600.0, t0_utc_s=1.8e9, channel="pump DE", source_id="t", seq=0), cfg)
+        found = [f for f in a.findings if f.code == "bearing_outer_race"]
+        assert found, [f.code for f in a.findings]
+        stages[stage] = found[0]
+    assert stages[3].stage == 3
+    assert stages[4].stage == 4 and stages[4].title.endswith("stage 4")
+    assert stages[4].severity.name == "DANGER"  # agent.advice: stage 4 → danger
+    assert any("median octave ÷ highest" in e.get("metric", "") for e in stages[4].evidence)
+
+
+def test_floor_stage_rule_on_floor_regions():
+    from agent.bearings import STAGE4_DENSITY_G_RTHZ, with_floor_stage
+    from agent.model import STANDARD_GRAVITY_MS2, Finding
+    from agent.peaks import FloorRegion
+
+    def regions(dens_g):  # octaves from 1 kHz, levels from densities in g/√Hz
+        out, lo = [], 1000.0
+        for d in dens_g:
+            out.append(FloorRegion(f"{lo:.0f} Hz", lo, 2 * lo, d * STANDARD_GRAVITY_MS2 * (lo ** 0.5), "m/s2"))
+            lo *= 2
+        return tuple(out)
+
+    called = Finding(code="bearing_outer_race", confidence=0.9, stage=3, title="x, stage 3",
+                     extra={"called": True, "bearing": "b", "defect": "outer", "fundamental": 79.1, "order": 3.21})
+    hi = 4 * STAGE4_DENSITY_G_RTHZ
+    assert with_floor_stage((called,), regions([hi, 0.7 * hi, 0.7 * hi, 0.6 * hi]))[0].stage == 4  # raised broadly
+    assert with_floor_stage((called,), regions([hi, hi, 0.95 * hi, hi]))[0].stage == 3  # evenly: flow noise
+    assert with_floor_stage((called,), regions([hi, 0.2 * hi, 0.2 * hi, 0.2 * hi]))[0].stage == 3  # one band rings
+    low = 0.5 * STAGE4_DENSITY_G_RTHZ
+    assert with_floor_stage((called,), regions([low] * 4))[0].stage == 3  # flat but not raised
+    guess = Finding(code="bearing_outer_race", confidence=0.4, stage=3, extra={**called.extra, "called": False})
+    assert with_floor_stage((guess,), regions([hi] * 4))[0].stage == 3  # a guess is not staged further
+    assert with_floor_stage((called,), regions([hi] * 2)) == (called,)  # too few octaves to judge
