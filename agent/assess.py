@@ -42,7 +42,8 @@ Alarm logic per feature (OPC UA Part 9 B.1.5 on-delay/deadband ideas)
   least max(``rate_ratio``, exp(k·σ·√2)), and above the baseline median,
   counts as an alert exceedance;
 * latch: with ``latch`` on, a raised level stays shown until acknowledged;
-* stop: when the machine stops, every feature's live level, persistence
+* stop: when the machine is confirmed stopped (a second stopped capture in a
+  row: one alone may be a misread speed), every feature's live level, persistence
   count and history restart (a latched level stays), so the first captures
   after a restart — a start-up transient, or a repaired machine — are not
   shown at the alarm level from before the stop; a fault still there is
@@ -435,10 +436,12 @@ def step(
     elif op.mode == STOPPED:
         machine, reason, new_op = MachineState.STOPPED, f"machine stopped ({op.reason})", op
         history_key = ""
-        # nothing is judged while stopped, and what runs after a stop (a repair, a start-up) is
-        # judged afresh: each feature's live alarm restarts (on-delay and hysteresis count again);
-        # a latched alarm stays shown until acknowledged
-        for name, fa in engine.features.items():
+        # nothing is judged while stopped, and what runs after a confirmed stop (two stopped captures
+        # in a row: a repair, a start-up; one alone may be a misread speed) is judged afresh: each
+        # feature's live alarm restarts (on-delay and hysteresis count again); a latched alarm stays
+        # shown until acknowledged
+        confirmed = engine.op_previous is not None and engine.op_previous.mode == STOPPED
+        for name, fa in engine.features.items() if confirmed else ():
             fresh = FeatureAlarm(latched=fa.latched)
             if fresh != fa:
                 feats[name] = fresh

@@ -475,7 +475,8 @@ def test_after_a_stop_the_restart_is_not_shown_at_the_alarm_level_from_before():
     states = [r.state for r in out]
     assert states[9:12] == [MachineState.NORMAL] * 3 and states[12:14] == [MachineState.DANGER] * 2
     assert states[14:16] == [MachineState.STOPPED] * 2
-    cleared = [e for e in out[14].events if e["event"] == "alarm"]
+    assert not [e for e in out[14].events if e["event"] == "alarm"]  # one stopped capture: not yet confirmed
+    cleared = [e for e in out[15].events if e["event"] == "alarm"]
     assert "acc_peak_g" in {e["feature"] for e in cleared} and {e["state"] for e in cleared} == {"normal"}
     assert states[16:] == [MachineState.NORMAL] * 4
     assert "capture not judged: started from stopped" in out[16].reason
@@ -487,3 +488,18 @@ def test_a_fault_still_there_after_a_restart_is_raised_again_by_persistence():
     # the start is a transient (not judged); then 2 of the last 3 judged captures above danger raise it
     assert states[16:] == [MachineState.NORMAL, MachineState.NORMAL, MachineState.DANGER, MachineState.DANGER]
     assert "at danger level" in out[18].reason
+
+
+def test_one_stopped_capture_alone_keeps_the_feature_alarms():
+    """A single capture read as stopped (a misread speed on a faulty machine) is not a confirmed
+    stop: the feature alarms stay, so danger does not flap to normal and back."""
+    from agent.assess import FeatureAlarm
+
+    b = model_baselines()
+    v = FeatureVector({"vel_rms_mm_s": 0.05, "order_1x_mm_s": 0.01})
+    stopped = classify(0.05, None, OCFG)
+    engine = replace(EngineState(), features={"acc_peak_g": FeatureAlarm(level=2, recent=(2, 2, 2))})
+    e1, _, _ = step(engine, b, v, stopped, 1.0, CFG, BCFG)
+    assert e1.features["acc_peak_g"].level == 2  # first stopped capture: kept (danger)
+    e2, _, _ = step(e1, b, v, stopped, 2.0, CFG, BCFG)
+    assert e2.features["acc_peak_g"].level == 0  # second in a row: a confirmed stop, judged afresh
