@@ -180,10 +180,15 @@ def run_demo(out_dir: str | Path = "demo-out", *, jobs: int | None = None, strea
     for text in summary:
         console.line(text)
     (out / "replay.log").write_text("\n".join(log_lines + [""] + summary) + "\n", encoding="utf-8")
+    from agent.errors import MissingExtra
     from agent.report import write_replay_reports
 
     console.line("Writing a report for each state change and a final one ...")
-    reports = write_replay_reports(res, cfg, out / "reports")
+    try:
+        reports = write_replay_reports(res, cfg, out / "reports")
+    except MissingExtra as exc:
+        reports = []
+        console.line(f"  reports skipped: {exc}")
     console.line("")
     console.line("Outputs:")
     console.line(f"  recordings (WAV + JSON with ground truth)  {rec_dir}/")

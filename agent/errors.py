@@ -12,7 +12,8 @@
      │    └── SourceStalled       no data within the timeout → close, reopen, count
      ├── StoreError               disk full / unwritable → count, report in health, keep monitoring
      │    └── IncompatibleStateFile  a stored file of an unknown format version → set aside, start afresh
-     └── PublishError             broker refuses our configuration (auth, TLS) → count, report
+     ├── PublishError             broker refuses our configuration (auth, TLS) → count, report
+     └── MissingExtra             an optional part is not installed (e.g. matplotlib for reports)
 
 Pure computation raises only ``ValueError``/``TypeError`` for impossible
 arguments, as numpy and scipy do. The daemon does not catch those: a bug
@@ -71,3 +72,7 @@ class IncompatibleStateFile(StoreError):
 
 class PublishError(AgentError):
     """The broker refused our configuration (authentication, TLS)."""
+
+
+class MissingExtra(AgentError):
+    """An optional dependency is not installed; the message names the pip extra that brings it."""

@@ -19,7 +19,15 @@ LIGHT = "#bbbbbb"
 
 
 def _plt():
-    import matplotlib
+    try:
+        import matplotlib
+    except ImportError:
+        from agent.errors import MissingExtra
+
+        raise MissingExtra(
+            "HTML reports need matplotlib, which is not installed: pip install -e '.[report]' "
+            "(or pip install 'skidvib[report]')"
+        ) from None
 
     matplotlib.use("Agg", force=True)
     import matplotlib.pyplot as plt

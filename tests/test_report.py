@@ -163,3 +163,18 @@ def test_trend_command_and_report_from_a_snapshot(tmp_path):
     assert res.returncode == 0, res.stderr
     page = out.read_text()
     assert "id='trend'" in page and "alert (zone C)" in page and "plan balancing" in page
+
+
+def test_without_matplotlib_reports_fail_with_a_clear_error():
+    """The service's base install has no matplotlib: a report then names the extra to install."""
+    import subprocess
+    import sys
+
+    code = ("import sys; sys.modules['matplotlib'] = None\n"
+            "from agent.errors import MissingExtra\n"
+            "from agent.plots import _plt\n"
+            "try:\n    _plt()\nexcept MissingExtra as exc:\n    print('missing:', exc)\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60,
+                         cwd=str(Path(__file__).resolve().parents[1]))
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.startswith("missing: HTML reports need matplotlib") and "[report]" in out.stdout
