@@ -484,14 +484,3 @@ def run(args) -> int:
         print(f"{len(written)} reports written to {args.reports}", file=sys.stderr if args.json else out)
     return 0 if res.steps else 3
 
-
-def main(argv=None) -> int:
-    parser = argparse.ArgumentParser(prog="skidvib")
-    sub = parser.add_subparsers(dest="command", required=True)
-    add_parser(sub)
-    args = parser.parse_args(argv)
-    return args.func(args)
-
-
-if __name__ == "__main__":
-    raise SystemExit(main())

@@ -188,14 +188,3 @@ def run(args) -> int:
     print(f"  story: {Path(args.out) / 'scenario.json'}   config: {Path(args.out) / 'agent.toml'}")
     return 0
 
-
-def main(argv=None) -> int:
-    parser = argparse.ArgumentParser(prog="skidvib")
-    sub = parser.add_subparsers(dest="command", required=True)
-    add_parser(sub)
-    args = parser.parse_args(argv)
-    return args.func(args)
-
-
-if __name__ == "__main__":
-    raise SystemExit(main())

@@ -121,6 +121,14 @@ class RateCheck:
         return self._samples_after_first / span
 
 
+def channel_names_for(channels: int, names: tuple[str, ...] | None) -> tuple[str, ...]:
+    """The configured channel names, or ch0, ch1, … ; their number must match ``channels``."""
+    out = tuple(names) if names else tuple(f"ch{i}" for i in range(channels))
+    if len(out) != channels:
+        raise ValueError(f"{len(out)} channel names for {channels} channels")
+    return out
+
+
 def calibrated_captures(
     counts: np.ndarray,
     t0_s: float,

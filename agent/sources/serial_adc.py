@@ -22,7 +22,7 @@ import numpy as np
 
 from agent.errors import SourceStalled, SourceUnavailable
 from agent.model import Capture
-from agent.sources.assembly import BlockAssembler, RateCheck, calibrated_captures
+from agent.sources.assembly import BlockAssembler, RateCheck, calibrated_captures, channel_names_for
 from agent.sources.base import Source
 from agent.sources.calibration import Calibration
 from agent.sources.serial_frames import FMT_INT16, FMT_INT24, FULL_SCALE_COUNTS, FrameParser, TextLineParser
@@ -78,10 +78,7 @@ class SerialSource(Source):
             conditioner_gain=conditioner_gain,
             dc_coupled=dc_coupled,
         )
-        names = channel_names or tuple(f"ch{i}" for i in range(self.channels))
-        if len(names) != self.channels:
-            raise ValueError(f"{len(names)} channel names for {self.channels} channels")
-        self.channel_names = tuple(names)
+        self.channel_names = channel_names_for(self.channels, channel_names)
         self.source_id = source_id
         self.fs_tolerance = float(fs_tolerance)
         self.read_chunk = int(read_chunk)

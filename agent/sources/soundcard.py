@@ -31,7 +31,7 @@ import numpy as np
 
 from agent.errors import SourceStalled, SourceUnavailable
 from agent.model import Capture
-from agent.sources.assembly import BlockAssembler, RateCheck, calibrated_captures
+from agent.sources.assembly import BlockAssembler, RateCheck, calibrated_captures, channel_names_for
 from agent.sources.base import Source
 from agent.sources.calibration import Calibration
 
@@ -82,10 +82,7 @@ class SoundCardSource(Source):
             sensitivity_mv_per_g=sensitivity_mv_per_g,
             conditioner_gain=conditioner_gain,
         )
-        names = channel_names or tuple(f"ch{i}" for i in range(self.channels))
-        if len(names) != self.channels:
-            raise ValueError(f"{len(names)} channel names for {self.channels} channels")
-        self.channel_names = tuple(names)
+        self.channel_names = channel_names_for(self.channels, channel_names)
         self.source_id = source_id
         self.latency = latency
         self.fs_tolerance = float(fs_tolerance)
