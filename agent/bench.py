@@ -680,7 +680,7 @@ def report_processes(rep: Report, quick: bool) -> None:
     bare_hwm_mb = bare["hwm_kb"] / 1024
     rows = [("bare `python -c \"import numpy, scipy.signal\"`", f"{bare_hwm_mb:.1f}", "1.00", "")]
     fig = {"bare_hwm_mb": bare_hwm_mb, "bare_start_s": bare["start_s"].median}
-    first, later = marks[0], marks[-2] if len(marks) > 2 else marks[-1]
+    first = marks[0]
     for m in marks:
         st = soak["at"].get(m)
         if not st:

@@ -66,3 +66,14 @@ def tls_broker(tmp_path, pki):
     b = _broker.Broker(tmp_path / "tlsbroker", pki=pki).start()
     yield b
     b.kill()
+
+
+def fill_disk(path: Path) -> None:
+    """Write zeros to ``path`` until the file system is full (64 KiB blocks, then 512 B for the rest)."""
+    with open(path, "wb", buffering=0) as fh:
+        for block in (65536, 512):
+            try:
+                while True:
+                    fh.write(b"\0" * block)
+            except OSError:
+                pass

@@ -19,8 +19,7 @@ import pytest
 
 from agent.config import load_config
 from agent.daemon import Daemon
-from agent.model import Capture
-from tests.test_daemon import ScriptedSource, write_config
+from tests.test_daemon import HookedSource, ScriptedSource, write_config
 
 YEAR_S = 365.25 * 86400
 QUIET = {"normal", "learning"}  # no alarm (learning: the baseline is not finished yet)
@@ -35,21 +34,14 @@ def _fast(cfg, interval_s=0.05):
     return dataclasses.replace(cfg, source=dataclasses.replace(cfg.source, interval_s=interval_s))
 
 
-class WallStampedSource(ScriptedSource):
+class WallStampedSource(HookedSource):
     """Scripted levels, stamped by the (injected) wall clock; ``hooks[i]`` runs before capture i."""
 
     def __init__(self, cfg, script, wall, hooks):
-        super().__init__(cfg, script)
-        self.wall, self.hooks = wall, hooks
-
-    daemon = None
+        super().__init__(cfg, script, hooks)
+        self.wall = wall
 
     def read(self, timeout_s):
-        while self.daemon is not None and not self.daemon.queue.empty():
-            time.sleep(0.002)  # paced by the analysis: no capture dropped on a busy machine
-        hook = self.hooks.get(self.i + 1)
-        if hook is not None:
-            hook()
         (cap,) = super().read(timeout_s)
         return (dataclasses.replace(cap, t0_utc_s=self.wall()),)
 

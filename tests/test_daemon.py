@@ -8,8 +8,6 @@ import threading
 import time
 from pathlib import Path
 
-import numpy as np
-import pytest
 
 from agent.config import load_config
 from agent.daemon import Daemon
@@ -54,6 +52,24 @@ class ScriptedSource(Source):
 
     def close(self):
         pass
+
+
+class HookedSource(ScriptedSource):
+    """ScriptedSource that calls ``hooks[i]()`` before delivering capture ``i`` (1-based)."""
+
+    def __init__(self, cfg, script, hooks):
+        super().__init__(cfg, script)
+        self.hooks = hooks
+
+    daemon = None
+
+    def read(self, timeout_s):
+        while self.daemon is not None and not self.daemon.queue.empty():
+            time.sleep(0.002)  # paced by the analysis: no capture dropped on a busy machine
+        hook = self.hooks.get(self.i + 1)
+        if hook is not None:
+            hook()
+        return super().read(timeout_s)
 
 
 def write_config(tmp_path, broker_port, extra="") -> Path:

@@ -18,7 +18,8 @@ import pytest
 from agent.config import load_config
 from agent.daemon import Daemon
 from tests.broker import Subscriber
-from tests.test_daemon import ScriptedSource, write_config
+from tests.conftest import fill_disk
+from tests.test_daemon import HookedSource, write_config
 
 BASE = "skv/plant1/p-201"
 
@@ -34,38 +35,6 @@ def small_fs(tmp_path):
     subprocess.run(["umount", "-l", str(mnt)], check=False)
 
 
-def _fill(path):
-    with open(path, "wb", buffering=0) as fh:
-        try:
-            while True:
-                fh.write(b"\0" * 65536)
-        except OSError:
-            pass
-        try:
-            while True:
-                fh.write(b"\0" * 512)
-        except OSError:
-            pass
-
-
-class HookedSource(ScriptedSource):
-    """ScriptedSource that calls ``hooks[i]()`` before delivering capture ``i`` (1-based)."""
-
-    def __init__(self, cfg, script, hooks):
-        super().__init__(cfg, script)
-        self.hooks = hooks
-
-    daemon = None
-
-    def read(self, timeout_s):
-        while self.daemon is not None and not self.daemon.queue.empty():
-            time.sleep(0.002)  # paced by the analysis: no capture dropped on a busy machine
-        hook = self.hooks.get(self.i + 1)
-        if hook is not None:
-            hook()
-        return super().read(timeout_s)
-
-
 def test_daemon_carries_on_through_a_full_disk(tmp_path, small_fs, mqtt_broker):
     cfg_path = write_config(tmp_path, mqtt_broker.port)
     text = cfg_path.read_text().replace(f'state_dir = "{tmp_path / "state"}"', f'state_dir = "{small_fs / "state"}"')
@@ -76,7 +45,7 @@ def test_daemon_carries_on_through_a_full_disk(tmp_path, small_fs, mqtt_broker):
     filler = small_fs / "filler"
     # healthy, full disk from capture 4 (a danger episode while full), space back from capture 10
     script = [1.0, 1.0, 1.0, 1.0, 2.5, 2.5, 1.0, 1.0, 1.0, 1.0, 2.5, 2.5, 1.0, 1.0, 1.0]
-    src = HookedSource(cfg, script, {4: lambda: _fill(filler), 10: lambda: filler.unlink()})
+    src = HookedSource(cfg, script, {4: lambda: fill_disk(filler), 10: lambda: filler.unlink()})
     sub = Subscriber(mqtt_broker, "skv/#")
     d = src.daemon = Daemon(cfg, source_factory=lambda c: src)
     t = threading.Thread(target=d.run)

@@ -11,6 +11,7 @@ from dataclasses import astuple
 import pytest
 
 from agent.outbox import Kind, NewMessage, Outbox, OutboxStats
+from tests.conftest import fill_disk
 
 TOPIC = "skv/plant1/pump1/events"
 
@@ -142,12 +143,7 @@ def test_disk_full_raises_store_error_and_keeps_rows(tmp_path):
         ob = Outbox(mnt / "o.sqlite", max_bytes=4 * 1024 * 1024)
         _fill(ob, Kind.KEPT, 5)
         filler = mnt / "filler"
-        with open(filler, "wb", buffering=0) as fh:
-            try:
-                while True:
-                    fh.write(b"\0" * 4096)
-            except OSError:
-                pass
+        fill_disk(filler)
         # the disk's own error is reported (not a failed ROLLBACK of a transaction SQLite
         # had already rolled back)
         with pytest.raises(StoreError, match="outbox.*disk is full"):

@@ -96,6 +96,7 @@ def test_snapshots_are_whole_or_absent(ctx, tmp_path):
         seen.update(got)
 
     n = _kill_loop(ctx, cw.snapshot_writer, (str(state),), check, seed=SEED)
+    assert n > 0
     from agent.store import Store
 
     st = Store(state)  # reopening removes whatever a kill left half-written

@@ -142,7 +142,7 @@ def test_demo_runs_on_a_small_scenario(small, tmp_path):
     reports = sorted((tmp_path / "out" / "reports").glob("*.html"))
     final = [r for r in reports if r.name.endswith("-final.html")]
     assert len(reports) == changes + 1 and len(final) == 1
-    assert f"<span class='state" in final[0].read_text() and steps[-1]["state"] in final[0].read_text()
+    assert "<span class='state" in final[0].read_text() and steps[-1]["state"] in final[0].read_text()
     buf2 = io.StringIO()
     run_demo(tmp_path / "out", scenario=str(path), stream=buf2, live=True, jobs=1)
     assert "Reusing the recordings" in buf2.getvalue()

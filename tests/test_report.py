@@ -114,7 +114,6 @@ def test_report_renders_in_headless_chromium(report, tmp_path):
     )
     assert shot.returncode == 0 and png.is_file(), shot.stderr[-500:]
     import matplotlib.image as mpimg
-    import numpy as np
 
     img = mpimg.imread(png)
     grey = img[..., :3].mean(axis=2)

@@ -19,7 +19,7 @@ from agent.model import STANDARD_GRAVITY_MS2
 from agent.sources import SOURCES, source_class
 from agent.sources.recovery import backoff_delays, reopen_with_backoff
 from agent.sources.serial_adc import SerialSource
-from agent.sources.serial_frames import FMT_INT16, FMT_INT24, encode_frame
+from agent.sources.serial_frames import FMT_INT24, encode_frame
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(Path(__file__).resolve().parent))
